@@ -1,0 +1,26 @@
+"""holonomic: constrained Langevin training and sampling of neural-network weights.
+
+Declare constraints on layers (:func:`constrain` with :class:`FixedNorm` or
+:class:`Orthonormal`), then train or sample with :class:`Langevin` or
+:class:`OverdampedLangevin`, which keep the constraints to roundoff with
+SHAKE/RATTLE projections at a temperature you choose.
+"""
+
+from holonomic.dynamics import IntegrationError, Langevin, OverdampedLangevin, StepInfo
+from holonomic.geometry import Constraint, FixedNorm, Orthonormal, constrain, constraint_of, residuals
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Constraint",
+    "FixedNorm",
+    "Orthonormal",
+    "constrain",
+    "constraint_of",
+    "residuals",
+    "Langevin",
+    "OverdampedLangevin",
+    "IntegrationError",
+    "StepInfo",
+    "__version__",
+]

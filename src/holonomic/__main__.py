@@ -1,0 +1,5 @@
+import sys
+
+from holonomic.cli import main
+
+sys.exit(main())

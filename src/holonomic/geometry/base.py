@@ -1,0 +1,104 @@
+"""The interface every constraint set implements.
+
+A constraint belongs to one parameter tensor ``W`` and describes a smooth
+manifold ``M = {W : g(W) = 0}`` embedded in the parameter's own Euclidean
+space.  The integrators in :mod:`holonomic.dynamics` only talk to a constraint
+through the operations below, all in the parameter's own shape:
+
+``project(w)``
+    the nearest point of ``M`` (Euclidean distance);
+``tangent(w, v)``
+    the orthogonal projection of ``v`` onto the tangent space ``T_w M``;
+``shake(w, y)``
+    the SHAKE position correction: the point ``w' = y + N(w) lam`` on ``M``
+    reached from ``y`` along the normal space at the *old* point ``w``;
+``geodesic(w, p, t)``
+    the exact geodesic flow of ``M`` (position and velocity after time ``t``);
+``residual(w)``
+    the largest relative violation of the constraint;
+``tangent_dof(shape)``
+    the dimension of ``T_w M`` (used for kinetic temperatures).
+"""
+
+from __future__ import annotations
+
+import math
+from abc import ABC, abstractmethod
+from typing import NamedTuple
+
+import torch
+from torch import Tensor
+
+__all__ = ["Constraint", "ShakeResult", "check_positive", "default_tolerance"]
+
+
+class ShakeResult(NamedTuple):
+    """Outcome of a SHAKE position correction.
+
+    ``ok`` is a 0-d boolean tensor (no host synchronisation is forced);
+    ``iterations`` is the number of solver iterations used (1 for closed
+    forms).
+    """
+
+    position: Tensor
+    ok: Tensor
+    iterations: int
+
+
+def default_tolerance(dtype: torch.dtype) -> float:
+    """Convergence tolerance for iterative projections, set by the dtype.
+
+    A small multiple of the machine epsilon: ``8 eps`` (about 1e-6 in float32
+    and 2e-15 in float64).  Common practice, no source.
+    """
+    return 8.0 * torch.finfo(dtype).eps
+
+
+def check_positive(name: str, value: float, *, allow_zero: bool = False) -> float:
+    """Return ``float(value)`` or raise a ``ValueError`` naming ``name``."""
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"{name} must be a real number, got {value!r}") from None
+    if math.isnan(x) or math.isinf(x) or x < 0 or (x == 0 and not allow_zero):
+        need = "non-negative and finite" if allow_zero else "positive and finite"
+        raise ValueError(f"{name} must be {need}, got {value!r}")
+    return x
+
+
+class Constraint(ABC):
+    """A constraint set for one parameter tensor (see module docstring)."""
+
+    @abstractmethod
+    def validate_shape(self, shape: torch.Size | tuple[int, ...], name: str = "parameter") -> None:
+        """Raise ``ValueError`` (naming ``name``) if the set is empty or
+        degenerate for tensors of this shape."""
+
+    @abstractmethod
+    def project(self, w: Tensor) -> Tensor:
+        """Nearest point of the constraint set to ``w`` (a new tensor)."""
+
+    @abstractmethod
+    def tangent(self, w: Tensor, v: Tensor) -> Tensor:
+        """Orthogonal projection of ``v`` onto the tangent space at ``w``."""
+
+    @abstractmethod
+    def shake(self, w: Tensor, y: Tensor) -> ShakeResult:
+        """Solve ``g(y + N(w) lam) = 0`` for the multiplier and return the point."""
+
+    @abstractmethod
+    def geodesic(self, w: Tensor, p: Tensor, t: float) -> tuple[Tensor, Tensor]:
+        """Position and velocity after following the geodesic from ``(w, p)``
+        for time ``t`` (``p`` tangent at ``w``)."""
+
+    @abstractmethod
+    def residual(self, w: Tensor) -> Tensor:
+        """Largest relative constraint violation (0-d tensor)."""
+
+    @abstractmethod
+    def tangent_residual(self, w: Tensor, v: Tensor) -> Tensor:
+        """Largest relative size of the normal component of ``v`` at ``w``."""
+
+    @abstractmethod
+    def tangent_dof(self, shape: torch.Size | tuple[int, ...]) -> int:
+        """Number of tangent degrees of freedom for a tensor of this shape."""
