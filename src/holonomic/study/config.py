@@ -1,0 +1,466 @@
+"""Study configuration: parse and validate a study file (TOML).
+
+A study file has five tables::
+
+    [study]   name, seeds, selection
+    [data]    source, target, train_size, val_fraction, test_fraction, standardize
+    [model]   widths, activation   (or factory = "package.module:function")
+    [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
+              schedule, projection, dtype
+    [arms.NAME]  grid = [...]      NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
+
+Every error is a :class:`StudyConfigError` (a ``ValueError``) whose message names the key
+and the allowed values, e.g. ``study config: unknown key 'data.trian_size'; allowed keys in
+[data]: source, target, ...``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any, Mapping
+
+__all__ = [
+    "ARM_NAMES",
+    "ArmConfig",
+    "BudgetConfig",
+    "DataConfig",
+    "ModelConfig",
+    "StudyConfig",
+    "StudyConfigError",
+    "load_config",
+    "parse_config",
+]
+
+#: Arms a study may list, in the order they appear in reports.
+ARM_NAMES = ("none", "weight_decay", "max_norm", "fixed_norm", "orthonormal")
+#: Arm every other arm is compared against.
+BASELINE_ARM = "weight_decay"
+ACTIVATIONS = ("relu", "tanh", "gelu", "silu")
+SCHEDULES = ("constant", "cosine")
+PROJECTIONS = ("rattle", "geodesic")
+DTYPES = ("float32", "float64")
+SELECTION_METRICS = ("val_accuracy", "val_loss")
+BUILTIN_SOURCES = ("digits", "demo")
+
+_STRENGTH_MEANING = {
+    "none": "no strength (one setting)",
+    "weight_decay": "L2 coefficient lambda: force += lambda * w (all parameters)",
+    "max_norm": "ball radius c: each hidden unit's incoming weights clipped to |w| <= c",
+    "fixed_norm": "row radius r: each hidden unit's incoming weights held at |w| = r",
+    "orthonormal": "scale s: hidden weights held at W W^T = s^2 I (rows) or W^T W = s^2 I",
+}
+
+
+class StudyConfigError(ValueError):
+    """A study file that cannot be run; the message names the key and what to change."""
+
+
+@dataclass(frozen=True)
+class DataConfig:
+    """Where the data come from and how they are split (stratified, fixed by seed)."""
+
+    source: str = "digits"
+    target: str = "target"
+    train_size: int | None = None
+    val_fraction: float = 0.2
+    test_fraction: float = 0.3
+    standardize: bool = True
+
+
+@dataclass(frozen=True)
+class ModelConfig:
+    """An MLP (``widths``, ``activation``) or a user factory ``"package.module:function"``.
+
+    A factory is called as ``factory(in_features, n_classes)`` and returns a
+    ``torch.nn.Module``; its ``nn.Linear`` layers except the last are the hidden layers.
+    """
+
+    widths: tuple[int, ...] = (64,)
+    activation: str = "relu"
+    factory: str | None = None
+
+
+@dataclass(frozen=True)
+class BudgetConfig:
+    """Training budget shared by every arm.
+
+    Either ``step`` (h) and ``friction`` (gamma) or SGD-style ``lr`` (eta) and ``momentum``
+    (mu); the two are related by ``mu = exp(-gamma h)``, ``eta = h^2 (1 + mu) / 2``
+    (``holonomic.Langevin.from_sgd``). ``temperature`` is in units of the mean minibatch
+    cross-entropy (no ``dataset_size`` scaling), so ``temperature = 1 / n_train`` is the
+    Bayesian posterior of the mean loss.
+    """
+
+    epochs: int = 30
+    batch_size: int = 32
+    step: float | None = None
+    friction: float | None = None
+    lr: float | None = None
+    momentum: float | None = None
+    temperature: float = 0.0
+    schedule: str = "constant"
+    projection: str = "rattle"
+    dtype: str = "float32"
+
+    @property
+    def parametrisation(self) -> str:
+        """``"sgd"`` when given as lr/momentum, ``"langevin"`` when given as step/friction."""
+        return "sgd" if self.lr is not None else "langevin"
+
+    def step_friction(self) -> tuple[float, float]:
+        """The integrator's step h and friction gamma for either parametrisation.
+
+        From ``eta = h^2 (1 + mu) / 2`` and ``mu = exp(-gamma h)``:
+        ``h = sqrt(2 eta / (1 + mu))``, ``gamma = -log(mu) / h``.
+        """
+        if self.lr is None:
+            return float(self.step), float(self.friction)
+        h = math.sqrt(2.0 * self.lr / (1.0 + self.momentum))
+        gamma = -math.log(self.momentum) / h if self.momentum > 0 else math.inf
+        return h, gamma
+
+
+@dataclass(frozen=True)
+class ArmConfig:
+    """One arm: a regulariser and its grid of strengths (``(0.0,)`` for ``none``)."""
+
+    name: str
+    grid: tuple[float, ...]
+
+    @property
+    def meaning(self) -> str:
+        return _STRENGTH_MEANING[self.name]
+
+
+@dataclass(frozen=True)
+class StudyConfig:
+    """A validated study. ``base_dir`` resolves relative data paths."""
+
+    name: str
+    seeds: tuple[int, ...]
+    data: DataConfig
+    model: ModelConfig
+    budget: BudgetConfig
+    arms: tuple[ArmConfig, ...]
+    selection: str = "val_accuracy"
+    base_dir: str = "."
+
+    def arm(self, name: str) -> ArmConfig:
+        for arm in self.arms:
+            if arm.name == name:
+                return arm
+        raise KeyError(name)
+
+    def data_path(self) -> Path | None:
+        """Absolute path of a user data file, or None for a built-in source."""
+        if self.data.source in BUILTIN_SOURCES:
+            return None
+        path = Path(self.data.source)
+        return path if path.is_absolute() else Path(self.base_dir) / path
+
+    def training_fingerprint(self) -> str:
+        """Hash of everything that changes a run's result except arm, strength and seed.
+
+        Stored in every run record so that a rerun into the same directory refuses to mix
+        runs of a different study.
+        """
+        payload = {
+            "data": asdict(self.data),
+            "model": asdict(self.model),
+            "budget": asdict(self.budget),
+        }
+        if self.data_path() is not None:
+            payload["data"]["source"] = str(self.data_path().resolve())
+        text = json.dumps(payload, sort_keys=True, default=str)
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain-data view (for summary.json)."""
+        return {
+            "name": self.name,
+            "seeds": list(self.seeds),
+            "selection": self.selection,
+            "data": asdict(self.data),
+            "model": {**asdict(self.model), "widths": list(self.model.widths)},
+            "budget": asdict(self.budget),
+            "arms": {a.name: list(a.grid) for a in self.arms},
+        }
+
+
+# ---------------------------------------------------------------------------------------
+# Parsing helpers
+
+
+def _fail(message: str) -> StudyConfigError:
+    return StudyConfigError(f"study config: {message}")
+
+
+def _check_keys(table: Mapping[str, Any], allowed: tuple[str, ...], where: str) -> None:
+    for key in table:
+        if key not in allowed:
+            name = f"{where}.{key}" if where else key
+            scope = f"in [{where}]" if where else "at the top level"
+            listed = ", ".join(allowed) if allowed else "(none)"
+            raise _fail(f"unknown key '{name}'; allowed keys {scope}: {listed}")
+
+
+def _type_name(value: Any) -> str:
+    return type(value).__name__
+
+
+def _get_int(table: Mapping[str, Any], key: str, where: str, default: int | None,
+             minimum: int | None = None) -> int | None:
+    if key not in table:
+        return default
+    value = table[key]
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise _fail(f"'{where}.{key}' must be an integer, got {value!r} ({_type_name(value)})")
+    if minimum is not None and value < minimum:
+        raise _fail(f"'{where}.{key}' must be >= {minimum}, got {value}")
+    return value
+
+
+def _get_float(table: Mapping[str, Any], key: str, where: str, default: float | None,
+               low: float | None = None, high: float | None = None,
+               low_open: bool = False, high_open: bool = False) -> float | None:
+    if key not in table:
+        return default
+    value = table[key]
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise _fail(f"'{where}.{key}' must be a number, got {value!r} ({_type_name(value)})")
+    value = float(value)
+    if not math.isfinite(value):
+        raise _fail(f"'{where}.{key}' must be finite, got {value}")
+    if low is not None and (value < low or (low_open and value == low)):
+        sign = ">" if low_open else ">="
+        raise _fail(f"'{where}.{key}' must be {sign} {low}, got {value}")
+    if high is not None and (value > high or (high_open and value == high)):
+        sign = "<" if high_open else "<="
+        raise _fail(f"'{where}.{key}' must be {sign} {high}, got {value}")
+    return value
+
+
+def _get_str(table: Mapping[str, Any], key: str, where: str, default: str | None,
+             choices: tuple[str, ...] | None = None) -> str | None:
+    if key not in table:
+        return default
+    value = table[key]
+    if not isinstance(value, str):
+        raise _fail(f"'{where}.{key}' must be a string, got {value!r} ({_type_name(value)})")
+    if choices is not None and value not in choices:
+        raise _fail(f"'{where}.{key}' must be one of {', '.join(choices)}; got {value!r}")
+    return value
+
+
+def _get_bool(table: Mapping[str, Any], key: str, where: str, default: bool) -> bool:
+    if key not in table:
+        return default
+    value = table[key]
+    if not isinstance(value, bool):
+        raise _fail(f"'{where}.{key}' must be true or false, got {value!r}")
+    return value
+
+
+def _get_table(doc: Mapping[str, Any], key: str) -> Mapping[str, Any]:
+    value = doc.get(key, {})
+    if not isinstance(value, Mapping):
+        raise _fail(f"'{key}' must be a table ([{key}]), got {value!r}")
+    return value
+
+
+# ---------------------------------------------------------------------------------------
+# Sections
+
+
+def _parse_seeds(table: Mapping[str, Any]) -> tuple[int, ...]:
+    value = table.get("seeds", 5)
+    if isinstance(value, bool):
+        raise _fail(f"'study.seeds' must be a count or a list of integers, got {value!r}")
+    if isinstance(value, int):
+        if value < 2:
+            raise _fail(f"'study.seeds' must be at least 2 (paired intervals need 2; "
+                        f"5 or more recommended), got {value}")
+        return tuple(range(value))
+    if isinstance(value, list):
+        if len(value) < 2 or not all(isinstance(s, int) and not isinstance(s, bool)
+                                     for s in value):
+            raise _fail(f"'study.seeds' must list at least 2 integers, got {value!r}")
+        if len(set(value)) != len(value):
+            raise _fail(f"'study.seeds' has repeated seeds, got {value!r}")
+        if any(s < 0 for s in value):
+            raise _fail(f"'study.seeds' must be non-negative, got {value!r}")
+        return tuple(value)
+    raise _fail(f"'study.seeds' must be a count or a list of integers, got {value!r}")
+
+
+def _parse_data(table: Mapping[str, Any], base_dir: Path) -> DataConfig:
+    _check_keys(table, ("source", "target", "train_size", "val_fraction", "test_fraction",
+                        "standardize"), "data")
+    source = _get_str(table, "source", "data", "digits")
+    if source not in BUILTIN_SOURCES:
+        path = Path(source)
+        if path.suffix.lower() not in (".csv", ".npz"):
+            raise _fail(f"'data.source' must be one of {', '.join(BUILTIN_SOURCES)} or a "
+                        f".csv / .npz file, got {source!r}")
+        full = path if path.is_absolute() else base_dir / path
+        if not full.is_file():
+            raise _fail(f"'data.source' file does not exist: {str(full)!r}; give a path "
+                        "relative to the study file or an absolute path")
+    val_fraction = _get_float(table, "val_fraction", "data", 0.2, 0.0, 1.0, True, True)
+    test_fraction = _get_float(table, "test_fraction", "data", 0.3, 0.0, 1.0, True, True)
+    if val_fraction + test_fraction >= 1.0:
+        raise _fail("'data.val_fraction' + 'data.test_fraction' must be < 1, got "
+                    f"{val_fraction} + {test_fraction}")
+    return DataConfig(
+        source=source,
+        target=_get_str(table, "target", "data", "target"),
+        train_size=_get_int(table, "train_size", "data", None, minimum=2),
+        val_fraction=val_fraction,
+        test_fraction=test_fraction,
+        standardize=_get_bool(table, "standardize", "data", True),
+    )
+
+
+def _parse_model(table: Mapping[str, Any]) -> ModelConfig:
+    _check_keys(table, ("widths", "activation", "factory"), "model")
+    factory = _get_str(table, "factory", "model", None)
+    if factory is not None:
+        if "widths" in table or "activation" in table:
+            raise _fail("'model.factory' replaces 'model.widths' and 'model.activation'; "
+                        "give either the factory or the MLP keys, not both")
+        module, sep, func = factory.partition(":")
+        if not sep or not module or not func:
+            raise _fail(f"'model.factory' must look like 'package.module:function', "
+                        f"got {factory!r}")
+        return ModelConfig(widths=(), activation="relu", factory=factory)
+    widths = table.get("widths", [64])
+    if (not isinstance(widths, list) or not widths
+            or not all(isinstance(w, int) and not isinstance(w, bool) and w >= 1
+                       for w in widths)):
+        raise _fail(f"'model.widths' must be a non-empty list of positive integers, "
+                    f"got {widths!r}")
+    activation = _get_str(table, "activation", "model", "relu", ACTIVATIONS)
+    return ModelConfig(widths=tuple(widths), activation=activation)
+
+
+def _parse_budget(table: Mapping[str, Any]) -> BudgetConfig:
+    _check_keys(table, ("epochs", "batch_size", "step", "friction", "lr", "momentum",
+                        "temperature", "schedule", "projection", "dtype"), "budget")
+    langevin = [k for k in ("step", "friction") if k in table]
+    sgd = [k for k in ("lr", "momentum") if k in table]
+    if langevin and sgd:
+        raise _fail("'budget' takes either step + friction or lr + momentum, not both; "
+                    f"got {', '.join(langevin + sgd)}")
+    step = _get_float(table, "step", "budget", None, 0.0, None, low_open=True)
+    friction = _get_float(table, "friction", "budget", 1.0 if step is not None else None,
+                          0.0, None, low_open=True)
+    lr = _get_float(table, "lr", "budget", None, 0.0, None, low_open=True)
+    momentum = _get_float(table, "momentum", "budget", 0.9 if lr is not None else None,
+                          0.0, 1.0, high_open=True)
+    if step is None and lr is None:
+        if langevin:
+            raise _fail("'budget.step' is required with 'budget.friction'")
+        if sgd:
+            raise _fail("'budget.lr' is required with 'budget.momentum'")
+        lr, momentum = 0.05, 0.9
+    return BudgetConfig(
+        epochs=_get_int(table, "epochs", "budget", 30, minimum=1),
+        batch_size=_get_int(table, "batch_size", "budget", 32, minimum=1),
+        step=step,
+        friction=friction,
+        lr=lr,
+        momentum=momentum,
+        temperature=_get_float(table, "temperature", "budget", 0.0, 0.0, None),
+        schedule=_get_str(table, "schedule", "budget", "constant", SCHEDULES),
+        projection=_get_str(table, "projection", "budget", "rattle", PROJECTIONS),
+        dtype=_get_str(table, "dtype", "budget", "float32", DTYPES),
+    )
+
+
+def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
+    if not table:
+        raise _fail("no arms: add at least [arms.weight_decay] and one other arm; "
+                    f"allowed arms: {', '.join(ARM_NAMES)}")
+    arms: dict[str, ArmConfig] = {}
+    for name, body in table.items():
+        if name not in ARM_NAMES:
+            raise _fail(f"unknown arm 'arms.{name}'; allowed arms: {', '.join(ARM_NAMES)}")
+        if not isinstance(body, Mapping):
+            raise _fail(f"'arms.{name}' must be a table ([arms.{name}]), got {body!r}")
+        if name == "none":
+            _check_keys(body, (), "arms.none")
+            arms[name] = ArmConfig(name, (0.0,))
+            continue
+        _check_keys(body, ("grid",), f"arms.{name}")
+        if "grid" not in body:
+            raise _fail(f"'arms.{name}.grid' is missing; give a list of strengths "
+                        f"({_STRENGTH_MEANING[name]})")
+        grid = body["grid"]
+        if not isinstance(grid, list):
+            raise _fail(f"'arms.{name}.grid' must be a list of numbers, got {grid!r}")
+        if not grid:
+            raise _fail(f"'arms.{name}.grid' is empty; give at least one strength "
+                        f"({_STRENGTH_MEANING[name]})")
+        values = []
+        for value in grid:
+            if isinstance(value, bool) or not isinstance(value, (int, float)):
+                raise _fail(f"'arms.{name}.grid' must hold numbers, got {value!r}")
+            value = float(value)
+            if not math.isfinite(value) or value < 0 or (name != "weight_decay" and value == 0):
+                lowest = ">= 0" if name == "weight_decay" else "> 0"
+                raise _fail(f"'arms.{name}.grid' values must be finite and {lowest}, "
+                            f"got {value}")
+            values.append(value)
+        if len(set(values)) != len(values):
+            raise _fail(f"'arms.{name}.grid' has repeated values, got {grid!r}")
+        arms[name] = ArmConfig(name, tuple(values))
+    if BASELINE_ARM not in arms:
+        raise _fail(f"'arms.{BASELINE_ARM}' is missing: every arm is compared against weight "
+                    f"decay; add [arms.{BASELINE_ARM}] with a grid")
+    tuned = {a.name: len(a.grid) for a in arms.values() if a.name != "none"}
+    if len(set(tuned.values())) > 1:
+        sizes = ", ".join(f"arms.{k}.grid has {v}" for k, v in tuned.items())
+        raise _fail(f"every tuned arm needs the same number of grid points (a fair search); "
+                    f"got {sizes}")
+    return tuple(arms[name] for name in ARM_NAMES if name in arms)
+
+
+def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
+                 default_name: str = "study") -> StudyConfig:
+    """Validate a parsed TOML document and return a :class:`StudyConfig`.
+
+    Raises:
+        StudyConfigError: naming the offending key and the allowed values.
+    """
+    _check_keys(doc, ("study", "data", "model", "budget", "arms"), "")
+    base = Path(base_dir)
+    study = _get_table(doc, "study")
+    _check_keys(study, ("name", "seeds", "selection"), "study")
+    config = StudyConfig(
+        name=_get_str(study, "name", "study", default_name),
+        seeds=_parse_seeds(study),
+        selection=_get_str(study, "selection", "study", "val_accuracy", SELECTION_METRICS),
+        data=_parse_data(_get_table(doc, "data"), base),
+        model=_parse_model(_get_table(doc, "model")),
+        budget=_parse_budget(_get_table(doc, "budget")),
+        arms=_parse_arms(_get_table(doc, "arms")),
+        base_dir=str(base),
+    )
+    return config
+
+
+def load_config(path: str | Path) -> StudyConfig:
+    """Read and validate a study file (TOML)."""
+    path = Path(path)
+    if not path.is_file():
+        raise StudyConfigError(f"study config: file does not exist: {str(path)!r}")
+    try:
+        doc = tomllib.loads(path.read_text())
+    except tomllib.TOMLDecodeError as exc:
+        raise StudyConfigError(f"study config: {str(path)!r} is not valid TOML: {exc}") from exc
+    return parse_config(doc, base_dir=path.parent, default_name=path.stem)

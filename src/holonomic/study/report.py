@@ -1,0 +1,325 @@
+"""Study outputs: selection by validation, results.csv, summary.json and report.md.
+
+Protocol: each arm's setting is the grid point with the best mean validation metric over
+seeds (``study.selection``; ties go to the earlier grid point; a setting with a failed run
+is not eligible). Test metrics are computed by every run and stored in ``results.csv`` so
+that a resumed or merged study needs no recomputation, but they are never used for the
+choice; the report quotes test metrics only for the chosen settings.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy import stats as sps
+
+from holonomic.study import storage
+from holonomic.study.config import BASELINE_ARM, StudyConfig
+from holonomic.study.runner import _METRIC_NAMES, RunSpec, plan_runs
+from holonomic.study.stats import paired_comparison, wilcoxon_min_p
+
+__all__ = ["CSV_COLUMNS", "Selection", "build_summary", "results_table", "select_settings",
+           "write_outputs"]
+
+CSV_COLUMNS = ("arm", "setting_index", "strength", "seed", "chosen", "status", "n_train",
+               "grad_evals") + _METRIC_NAMES
+#: Metrics compared across arms (paired by seed) in the report.
+COMPARED = ("test_accuracy", "gap_accuracy", "gap_loss")
+#: Per-arm metrics summarised for the chosen settings.
+SUMMARISED = ("train_accuracy", "test_accuracy", "gap_accuracy", "gap_loss", "ece_test",
+              "mean_row_norm_hidden", "constraint_residual")
+
+
+@dataclass(frozen=True)
+class Selection:
+    """The chosen grid point of one arm and the validation means it was chosen from."""
+
+    arm: str
+    index: int | None
+    strength: float | None
+    validation_means: tuple[float, ...]
+
+
+def _metric(record: dict, name: str) -> float:
+    return float(record["metrics"][name])
+
+
+def select_settings(config: StudyConfig, records: dict[str, dict]) -> dict[str, Selection]:
+    """Choose each arm's setting by the mean validation metric over seeds (only)."""
+    larger_better = config.selection == "val_accuracy"
+    chosen = {}
+    for arm in config.arms:
+        means = []
+        for i in range(len(arm.grid)):
+            values = [_metric(records[RunSpec(arm.name, i, s, seed).key], config.selection)
+                      for seed, s in ((seed, arm.grid[i]) for seed in config.seeds)]
+            means.append(float(np.mean(values)) if all(map(math.isfinite, values)) else math.nan)
+        best = None
+        for i, m in enumerate(means):
+            if math.isnan(m):
+                continue
+            if best is None or (m > means[best] if larger_better else m < means[best]):
+                best = i
+        chosen[arm.name] = Selection(arm.name, best,
+                                     None if best is None else arm.grid[best], tuple(means))
+    return chosen
+
+
+def _fmt(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, float):
+        return repr(value)
+    return str(value)
+
+
+def results_table(config: StudyConfig, records: dict[str, dict],
+                  chosen: dict[str, Selection]) -> str:
+    """``results.csv`` text: one row per arm, setting and seed, in plan order."""
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(CSV_COLUMNS)
+    for spec in plan_runs(config):
+        record = records[spec.key]
+        row = {
+            "arm": spec.arm, "setting_index": spec.index, "strength": float(spec.strength),
+            "seed": spec.seed, "chosen": chosen[spec.arm].index == spec.index,
+            "status": record["status"], "n_train": record["n_train"],
+            "grad_evals": record["grad_evals"],
+        }
+        row.update({k: float(record["metrics"][k]) for k in _METRIC_NAMES})
+        writer.writerow([_fmt(row[c]) for c in CSV_COLUMNS])
+    return buffer.getvalue()
+
+
+def _mean_interval(values: np.ndarray, confidence: float = 0.95) -> dict[str, float]:
+    """Mean over seeds with a t interval (scipy.stats.t) and the sample sd."""
+    values = np.asarray(values, dtype=np.float64)
+    n = len(values)
+    mean = float(values.mean())
+    sd = float(values.std(ddof=1)) if n > 1 else math.nan
+    if not math.isfinite(mean):
+        return {"mean": mean, "sd": sd, "ci_low": math.nan, "ci_high": math.nan}
+    if n > 1 and sd > 0:
+        low, high = sps.t.interval(confidence, n - 1, loc=mean, scale=sd / math.sqrt(n))
+    else:
+        low = high = mean
+    return {"mean": mean, "sd": sd, "ci_low": float(low), "ci_high": float(high)}
+
+
+def _chosen_values(config: StudyConfig, records: dict[str, dict], sel: Selection,
+                   metric: str) -> np.ndarray:
+    return np.array([_metric(records[RunSpec(sel.arm, sel.index, sel.strength, seed).key],
+                             metric) for seed in config.seeds])
+
+
+def build_summary(config: StudyConfig, records: dict[str, dict],
+                  chosen: dict[str, Selection]) -> dict[str, Any]:
+    """Everything the report states, as plain data (written to summary.json)."""
+    statuses = [r["status"] for r in records.values()]
+    grad_evals = sorted({int(r["grad_evals"]) for r in records.values()})
+    arms: dict[str, Any] = {}
+    for arm in config.arms:
+        sel = chosen[arm.name]
+        entry: dict[str, Any] = {
+            "grid": list(arm.grid),
+            "meaning": arm.meaning,
+            "validation_means": list(sel.validation_means),
+            "chosen_index": sel.index,
+            "chosen_strength": sel.strength,
+            "layers": next(r["layers"] for r in records.values() if r["arm"] == arm.name),
+        }
+        if sel.index is not None:
+            entry["chosen"] = {m: _mean_interval(_chosen_values(config, records, sel, m))
+                               for m in SUMMARISED}
+            entry["chosen"]["per_seed_test_accuracy"] = list(
+                _chosen_values(config, records, sel, "test_accuracy"))
+        arms[arm.name] = entry
+    comparisons: dict[str, Any] = {}
+    base = chosen[BASELINE_ARM]
+    for arm in config.arms:
+        sel = chosen[arm.name]
+        if arm.name == BASELINE_ARM or sel.index is None or base.index is None:
+            continue
+        comparisons[arm.name] = {}
+        for metric in COMPARED:
+            result = paired_comparison(_chosen_values(config, records, sel, metric),
+                                       _chosen_values(config, records, base, metric))
+            comparisons[arm.name][metric] = result.to_dict()
+    return {
+        "study": config.to_dict(),
+        "protocol": {
+            "selection": f"mean {config.selection} over seeds, per arm (larger accuracy / "
+                         "smaller loss wins; ties go to the earlier grid point)",
+            "test_metrics": "computed for every run and stored in results.csv; never used for "
+                            "selection; reported only for the chosen settings",
+            "paired_by": "seed (same split, initial weights, minibatch order and noise)",
+            "confidence": 0.95,
+            "wilcoxon_min_p": wilcoxon_min_p(len(config.seeds)),
+        },
+        "runs": {"total": len(records), "ok": statuses.count("ok"),
+                 "failed": statuses.count("failed"), "diverged": statuses.count("diverged")},
+        "grad_evals_per_run": grad_evals,
+        "arms": arms,
+        "comparisons_vs_weight_decay": comparisons,
+    }
+
+
+# ---------------------------------------------------------------------------------------
+# report.md
+
+def _num(x: float, digits: int = 4) -> str:
+    if x is None or (isinstance(x, float) and math.isnan(x)):
+        return "n/a"
+    return f"{x:.{digits}f}"
+
+
+def _interval(entry: dict[str, float], digits: int = 4) -> str:
+    return (f"{_num(entry['mean'], digits)} [{_num(entry['ci_low'], digits)}, "
+            f"{_num(entry['ci_high'], digits)}]")
+
+
+def _verdict(arm: str, metric: str, comp: dict) -> str:
+    if comp["includes_zero"]:
+        return "the data cannot tell them apart (the interval includes 0)"
+    direction = "higher" if comp["mean_difference"] > 0 else "lower"
+    return f"{arm} {direction} than weight_decay (the interval excludes 0)"
+
+
+def report_markdown(config: StudyConfig, summary: dict[str, Any], description: str,
+                    plots: list[str]) -> str:
+    """The report: protocol, chosen settings, tables, comparisons and caveats."""
+    b = config.budget
+    h, gamma = b.step_friction()
+    n_seeds = len(config.seeds)
+    lines = [f"# Study `{config.name}`", ""]
+    lines += ["## Set-up", "",
+              f"- Data: {description}.",
+              f"- Split per seed (stratified): test {config.data.test_fraction:g} and "
+              f"validation {config.data.val_fraction:g} of all rows; training set "
+              f"{'all the rest' if config.data.train_size is None else config.data.train_size}"
+              f" rows; features standardised with training statistics"
+              f"{'' if config.data.standardize else ' (off)'}.",
+              f"- Model: " + (f"factory `{config.model.factory}`" if config.model.factory else
+                              f"MLP, hidden widths {list(config.model.widths)}, "
+                              f"{config.model.activation}") + ".",
+              f"- Training (same for every arm): `holonomic.Langevin`, {b.epochs} epochs, batch "
+              f"{b.batch_size}, step h = {h:.6g}, friction gamma = {gamma:.6g} (SGD view: lr = "
+              f"{h * h * (1 + math.exp(-gamma * h)) / 2:.6g}, momentum = "
+              f"{math.exp(-gamma * h):.6g}), temperature {b.temperature:g} (units of the mean "
+              f"cross-entropy), schedule {b.schedule}, projection {b.projection}, {b.dtype}.",
+              f"- Gradient evaluations per run: {summary['grad_evals_per_run']} "
+              "(identical across arms).",
+              f"- Seeds: {list(config.seeds)}; each seed fixes the split, initial weights, "
+              "minibatch order and integrator noise, shared by every arm (paired design).",
+              f"- Runs: {summary['runs']['total']} ({summary['runs']['ok']} finished, "
+              f"{summary['runs']['failed']} failed integration steps, "
+              f"{summary['runs']['diverged']} diverged).", ""]
+    lines += ["## Arms", "", "| arm | strength means | grid | acts on |", "|---|---|---|---|"]
+    for name, arm in summary["arms"].items():
+        lines.append(f"| {name} | {arm['meaning']} | {arm['grid']} | "
+                     f"{', '.join(arm['layers']) or '-'} |")
+    lines += ["", "Hidden layers are every `nn.Linear` but the last; the output layer and the "
+              "biases are never constrained or clipped. Weight decay acts on every parameter.",
+              ""]
+    lines += ["## Protocol", "",
+              f"- Each arm's setting is the grid point with the best mean `{config.selection}` "
+              "over seeds (validation split only).",
+              "- Test metrics were computed for every run (they are in `results.csv`, so "
+              "resuming needs no recomputation) but were never used to choose a setting; "
+              "this report quotes test numbers only for the chosen settings.",
+              "- Gap: `gap_accuracy` = train accuracy - test accuracy; `gap_loss` = test loss "
+              "- train loss. ECE: 15 equal-width confidence bins on the test split.", ""]
+    lines += ["## Validation means per setting (used for the choice)", "",
+              f"| arm | grid | mean {config.selection} per grid point | chosen |",
+              "|---|---|---|---|"]
+    for name, arm in summary["arms"].items():
+        means = ", ".join(_num(m) for m in arm["validation_means"])
+        chosen = "none valid" if arm["chosen_index"] is None else f"{arm['chosen_strength']:g}"
+        lines.append(f"| {name} | {arm['grid']} | {means} | {chosen} |")
+    lines += ["", "## Chosen settings on the test split (mean [95% t interval] over seeds)", "",
+              "| arm | strength | train acc | test acc | gap acc | gap loss | ECE | mean row "
+              "norm | residual |", "|---|---|---|---|---|---|---|---|---|"]
+    for name, arm in summary["arms"].items():
+        if arm["chosen_index"] is None:
+            lines.append(f"| {name} | no valid setting (all failed) | | | | | | | |")
+            continue
+        c = arm["chosen"]
+        lines.append(
+            f"| {name} | {arm['chosen_strength']:g} | {_num(c['train_accuracy']['mean'])} | "
+            f"{_interval(c['test_accuracy'])} | {_interval(c['gap_accuracy'])} | "
+            f"{_interval(c['gap_loss'])} | {_num(c['ece_test']['mean'])} | "
+            f"{_num(c['mean_row_norm_hidden']['mean'], 3)} | "
+            f"{_num(c['constraint_residual']['mean'], 2) if not math.isnan(c['constraint_residual']['mean']) else 'n/a'} |")
+    lines += ["", "## Paired comparison against weight decay", "",
+              "Differences are arm minus weight_decay per seed (chosen settings); 95% t "
+              "interval (scipy.stats.t) and two-sided Wilcoxon signed-rank p "
+              "(scipy.stats.wilcoxon).", "",
+              "| arm | metric | mean difference [95% CI] | Wilcoxon p | reading |",
+              "|---|---|---|---|---|"]
+    for name, comps in summary["comparisons_vs_weight_decay"].items():
+        for metric, comp in comps.items():
+            lines.append(
+                f"| {name} | {metric} | {_num(comp['mean_difference'])} "
+                f"[{_num(comp['ci_low'])}, {_num(comp['ci_high'])}] | "
+                f"{_num(comp['p_wilcoxon'], 3)} | {_verdict(name, metric, comp)} |")
+    if not summary["comparisons_vs_weight_decay"]:
+        lines.append("| - | - | - | - | no comparison possible |")
+    min_p = summary["protocol"]["wilcoxon_min_p"]
+    lines += ["", "## Caveats (what this does and does not show)", "",
+              f"- {n_seeds} seeds. With {n_seeds} pairs the smallest possible two-sided "
+              f"Wilcoxon p is {min_p:.4g}"
+              + (" so it can never fall below 0.05; read the intervals." if min_p > 0.05
+                 else ".")
+              + (" Fewer than 5 seeds: treat every interval as rough." if n_seeds < 5 else ""),
+              "- An interval that includes 0 means the data cannot tell the arms apart at this "
+              "sample size; it is not evidence that they are equal.",
+              "- No correction for multiple comparisons (several arms, several metrics).",
+              "- One data set, one model and one training budget: the ranking may change with "
+              "any of them. Each grid is small; a better strength may lie outside it.",
+              "- Splits differ between seeds, so the intervals include split-to-split "
+              "variation; the comparison is paired, which removes what the arms share.",
+              "- The max-norm arm clips after each integrator step (the common practice); the "
+              "constraint arms are held on their sets inside the integrator (RATTLE).",
+              "- Test metrics exist for every run in results.csv; only the chosen settings' "
+              "test metrics are quoted here, and nothing was chosen with them.", ""]
+    if summary["runs"]["ok"] < summary["runs"]["total"]:
+        lines += ["- Some runs failed or diverged (NaN metrics in results.csv); settings with "
+                  "a failed seed were not eligible for selection.", ""]
+    lines += ["## Files", "",
+              "- `results.csv`: one row per arm, setting and seed (`chosen` flags the selected "
+              "settings); `summary.json`: the numbers in this report; `runs/`: one record per "
+              "run with its per-epoch history."]
+    lines += [f"- `{p}`" for p in plots]
+    return "\n".join(lines) + "\n"
+
+
+def write_outputs(config: StudyConfig, out_dir: str | Path, records: dict[str, dict],
+                  description: str, plots: bool = True) -> dict[str, Any]:
+    """Write results.csv, summary.json, report.md and the plots; returns the summary."""
+    out_dir = Path(out_dir)
+    missing = [s.key for s in plan_runs(config) if s.key not in records]
+    if missing:
+        raise RuntimeError(f"{len(missing)} runs are not finished (e.g. {missing[0]}); run "
+                           "the study to completion before writing the report")
+    chosen = select_settings(config, records)
+    summary = build_summary(config, records, chosen)
+    summary["data_description"] = description
+    storage.atomic_write_text(out_dir / "results.csv", results_table(config, records, chosen))
+    storage.atomic_write_text(out_dir / "summary.json", storage.dumps(summary))
+    plot_files: list[str] = []
+    if plots:
+        from holonomic.study.plots import write_plots
+
+        plot_files = write_plots(config, records, chosen, out_dir)
+    summary["plots"] = plot_files
+    storage.atomic_write_text(out_dir / "summary.json", storage.dumps(summary))
+    storage.atomic_write_text(out_dir / "report.md",
+                              report_markdown(config, summary, description, plot_files))
+    return summary

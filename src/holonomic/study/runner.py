@@ -1,0 +1,325 @@
+"""Running a study: one training run per (arm, setting, seed), resumable and parallel.
+
+Every run trains with ``holonomic.Langevin`` under the same budget (epochs, batch size,
+step/friction/temperature, schedule), so every arm gets the same number of gradient
+evaluations: ``epochs * ceil(n_train / batch_size)``. The seed fixes the data split, the
+initial weights, the minibatch order and the integrator's noise, and the same seeds are
+used by every arm, so comparisons between arms are paired.
+
+Per-step hook point: :func:`default_step_hooks` returns the hooks called after every
+optimizer step with the model and the optimizer (see :class:`StepHook`); extend it (e.g. with
+an audit of the integrator) and each hook's ``summary()`` lands in the run record under
+``"hooks"``.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from dataclasses import dataclass
+from multiprocessing import get_context
+from pathlib import Path
+from typing import Any, Callable, Iterable, Protocol, Sequence
+
+import numpy as np
+import torch
+from torch import nn
+from torch.nn import functional as F
+
+import holonomic as hn
+from holonomic.study import storage
+from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
+from holonomic.study.config import StudyConfig, StudyConfigError
+from holonomic.study.data import Split, load_dataset, make_split
+from holonomic.study.models import build_model
+from holonomic.study.stats import expected_calibration_error
+
+__all__ = [
+    "RunSpec",
+    "StepHook",
+    "default_step_hooks",
+    "epoch_order",
+    "make_optimizer",
+    "plan_runs",
+    "run_all",
+    "train_run",
+]
+
+_DTYPES = {"float32": torch.float32, "float64": torch.float64}
+ECE_BINS = 15
+
+
+@dataclass(frozen=True)
+class RunSpec:
+    """One training run: an arm, a grid point of that arm, and a seed."""
+
+    arm: str
+    index: int
+    strength: float
+    seed: int
+
+    @property
+    def key(self) -> str:
+        """File-name key, unique per (arm, grid index, seed)."""
+        return f"{self.arm}-g{self.index}-s{self.seed}"
+
+
+def plan_runs(config: StudyConfig) -> list[RunSpec]:
+    """All runs of a study in a fixed order (arm, grid point, seed)."""
+    return [RunSpec(arm.name, i, strength, seed)
+            for arm in config.arms
+            for i, strength in enumerate(arm.grid)
+            for seed in config.seeds]
+
+
+class StepHook(Protocol):
+    """Called after every optimizer step; ``summary()`` is stored in the run record."""
+
+    name: str
+
+    def on_step(self, model: nn.Module, optimizer: torch.optim.Optimizer, step: int) -> None:
+        ...
+
+    def summary(self) -> dict[str, Any]:
+        ...
+
+
+def default_step_hooks(config: StudyConfig, spec: RunSpec) -> list[StepHook]:
+    """Hooks attached to every run. None by default.
+
+    This is the extension point for per-run diagnostics (for instance an audit of the
+    integrator's constraint residuals and kinetic energy): return objects with ``name``,
+    ``on_step(model, optimizer, step)`` and ``summary() -> dict``.
+    """
+    return []
+
+
+def make_optimizer(params: Iterable[torch.nn.Parameter], config: StudyConfig,
+                   weight_decay: float, seed: int) -> torch.optim.Optimizer:
+    """``holonomic.Langevin`` with the study budget (either parametrisation)."""
+    b = config.budget
+    if b.parametrisation == "sgd":
+        return hn.Langevin.from_sgd(params, lr=b.lr, momentum=b.momentum,
+                                    temperature=b.temperature, weight_decay=weight_decay,
+                                    seed=seed, projection=b.projection)
+    return hn.Langevin(params, step=b.step, friction=b.friction, temperature=b.temperature,
+                       projection=b.projection, seed=seed, weight_decay=weight_decay)
+
+
+def epoch_order(n: int, seed: int, epoch: int) -> torch.Tensor:
+    """Minibatch order of one epoch: a permutation fixed by (seed, epoch)."""
+    generator = torch.Generator().manual_seed(1_000_003 * seed + epoch)
+    return torch.randperm(n, generator=generator)
+
+
+def _evaluate(model: nn.Module, x: torch.Tensor, y: torch.Tensor) -> dict[str, Any]:
+    with torch.no_grad():
+        logits = model(x)
+        loss = float(F.cross_entropy(logits, y))
+        accuracy = float((logits.argmax(dim=1) == y).double().mean())
+        probabilities = torch.softmax(logits.double(), dim=1).numpy()
+    return {"loss": loss, "accuracy": accuracy, "probabilities": probabilities}
+
+
+def _tensors(split: Split, dtype: torch.dtype) -> dict[str, tuple[torch.Tensor, torch.Tensor]]:
+    def pair(x: np.ndarray, y: np.ndarray) -> tuple[torch.Tensor, torch.Tensor]:
+        return torch.as_tensor(x, dtype=dtype), torch.as_tensor(y, dtype=torch.long)
+
+    return {"train": pair(split.x_train, split.y_train), "val": pair(split.x_val, split.y_val),
+            "test": pair(split.x_test, split.y_test)}
+
+
+def train_run(config: StudyConfig, spec: RunSpec,
+              hooks: Sequence[StepHook] | None = None,
+              return_model: bool = False) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
+    """Train one run and return its record (metrics, per-epoch history, settings).
+
+    Loop: for each epoch, for each minibatch of :func:`epoch_order`:
+    ``zero_grad; loss = mean cross-entropy; backward; optimizer.step(); arm after-step;
+    hooks``; after each epoch, accuracy / loss on train, validation and test, hidden weight
+    norms and the constraint residual are logged. Test metrics are computed for every run
+    but the study never uses them to choose settings.
+
+    A failed integration step (``holonomic.IntegrationError``) or a non-finite loss ends the
+    run with ``status`` ``"failed"`` / ``"diverged"`` and NaN metrics; the study reports it.
+    """
+    dtype = _DTYPES[config.budget.dtype]
+    split = make_split(load_dataset(config), config.data, spec.seed)
+    data = _tensors(split, dtype)
+    x_train, y_train = data["train"]
+    n_train = len(y_train)
+    model = build_model(config.model, x_train.shape[1], split.n_classes, spec.seed, dtype)
+    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model)
+    optimizer = make_optimizer(model.parameters(), config, setup.weight_decay, spec.seed)
+    batch = config.budget.batch_size
+    steps_per_epoch = math.ceil(n_train / batch)
+    total_steps = config.budget.epochs * steps_per_epoch
+    scheduler = None
+    if config.budget.schedule == "cosine":
+        scheduler = torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total_steps)
+    hooks = list(default_step_hooks(config, spec) if hooks is None else hooks)
+
+    history: dict[str, list[float]] = {k: [] for k in (
+        "epoch", "train_accuracy", "val_accuracy", "test_accuracy", "train_loss", "val_loss",
+        "test_loss", "mean_row_norm_hidden", "constraint_residual")}
+    status, message, step = "ok", "", 0
+    started = time.perf_counter()
+    for epoch in range(config.budget.epochs):
+        order = epoch_order(n_train, spec.seed, epoch)
+        try:
+            for start in range(0, n_train, batch):
+                idx = order[start:start + batch]
+                optimizer.zero_grad(set_to_none=True)
+                loss = F.cross_entropy(model(x_train[idx]), y_train[idx])
+                if not torch.isfinite(loss):
+                    raise FloatingPointError(f"non-finite loss at step {step}")
+                loss.backward()
+                optimizer.step()
+                if setup.after_step is not None:
+                    setup.after_step()
+                step += 1
+                for hook in hooks:
+                    hook.on_step(model, optimizer, step)
+                if scheduler is not None:
+                    scheduler.step()
+        except hn.IntegrationError as exc:
+            status, message = "failed", f"IntegrationError at step {step}: {exc}"
+        except FloatingPointError as exc:
+            status, message = "diverged", str(exc)
+        if status != "ok":
+            break
+        evaluations = {part: _evaluate(model, *data[part]) for part in data}
+        history["epoch"].append(epoch + 1)
+        for part, ev in evaluations.items():
+            history[f"{part}_accuracy"].append(ev["accuracy"])
+            history[f"{part}_loss"].append(ev["loss"])
+        history["mean_row_norm_hidden"].append(weight_norms(model)["mean_row_norm_hidden"])
+        history["constraint_residual"].append(constraint_residual(model, setup))
+
+    metrics = _final_metrics(model, data, setup, status)
+    record = {
+        "key": spec.key,
+        "arm": spec.arm,
+        "setting_index": spec.index,
+        "strength": spec.strength,
+        "seed": spec.seed,
+        "status": status,
+        "message": message,
+        "fingerprint": config.training_fingerprint(),
+        "n_train": n_train,
+        "grad_evals": total_steps,
+        "steps_done": step,
+        "layers": setup.layers,
+        "metrics": metrics,
+        "history": history,
+        "hooks": {hook.name: hook.summary() for hook in hooks},
+        "wall_s": time.perf_counter() - started,
+    }
+    return (record, model) if return_model else record
+
+
+_METRIC_NAMES = (
+    "train_accuracy", "val_accuracy", "test_accuracy", "train_loss", "val_loss", "test_loss",
+    "gap_accuracy", "gap_loss", "val_gap_accuracy", "val_gap_loss", "ece_val", "ece_test",
+    "weight_norm_hidden", "mean_row_norm_hidden", "weight_norm_output", "constraint_residual",
+)
+
+
+def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str) -> dict:
+    if status != "ok":
+        return {name: math.nan for name in _METRIC_NAMES}
+    ev = {part: _evaluate(model, *data[part]) for part in data}
+    out = {f"{part}_{k}": ev[part][k] for part in ev for k in ("accuracy", "loss")}
+    out["gap_accuracy"] = out["train_accuracy"] - out["test_accuracy"]
+    out["gap_loss"] = out["test_loss"] - out["train_loss"]
+    out["val_gap_accuracy"] = out["train_accuracy"] - out["val_accuracy"]
+    out["val_gap_loss"] = out["val_loss"] - out["train_loss"]
+    for part in ("val", "test"):
+        out[f"ece_{part}"] = expected_calibration_error(
+            ev[part]["probabilities"], data[part][1].numpy(), ECE_BINS)
+    out.update(weight_norms(model))
+    out["constraint_residual"] = constraint_residual(model, setup)
+    return {name: out[name] for name in _METRIC_NAMES}
+
+
+# ---------------------------------------------------------------------------------------
+# Running many runs
+
+
+def _execute(config: StudyConfig, spec: RunSpec, out_dir: str) -> str:
+    """Train one run and store its record; single-threaded torch for reproducibility."""
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        record = train_run(config, spec)
+    finally:
+        torch.set_num_threads(threads)
+    storage.write_record(out_dir, record)
+    return spec.key
+
+
+def _worker_init() -> None:
+    torch.set_num_threads(1)
+    os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+
+def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str | Path) -> None:
+    """Refuse to mix runs of a different study (data, model or budget changed)."""
+    expected = config.training_fingerprint()
+    for key, record in records.items():
+        if record.get("fingerprint") != expected:
+            raise StudyConfigError(
+                f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "
+                "data, model or budget settings; use a new --out directory or delete "
+                f"{str(storage.runs_dir(out_dir))!r}")
+
+
+def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
+            progress: bool = True, specs: Sequence[RunSpec] | None = None,
+            execute: Callable[[StudyConfig, RunSpec, str], str] = _execute) -> dict[str, dict]:
+    """Run every run not yet stored under ``out_dir/runs`` and return all records.
+
+    Finished runs are skipped, so an interrupted study resumes where it stopped. With
+    ``workers > 1`` runs go to a pool of spawned processes (torch single-threaded in each).
+    A progress bar (tqdm, to stderr) shows the count and an ETA over the whole study.
+    """
+    if workers < 1:
+        raise ValueError(f"workers must be >= 1, got {workers}")
+    out_dir = str(out_dir)
+    storage.runs_dir(out_dir).mkdir(parents=True, exist_ok=True)
+    storage.remove_stale_temporaries(out_dir)
+    specs = plan_runs(config) if specs is None else list(specs)
+    keys = [s.key for s in specs]
+    done = storage.read_records(out_dir, keys)
+    check_compatible(config, done, out_dir)
+    pending = [s for s in specs if s.key not in done]
+    load_dataset(config)  # fail early on data errors, in this process
+
+    from tqdm.auto import tqdm
+
+    bar = tqdm(total=len(specs), initial=len(specs) - len(pending), disable=not progress,
+               desc=f"study {config.name}", unit="run", dynamic_ncols=True)
+    try:
+        if workers == 1 or len(pending) <= 1:
+            for spec in pending:
+                execute(config, spec, out_dir)
+                bar.update(1)
+        else:
+            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn"),
+                                     initializer=_worker_init) as pool:
+                futures = {pool.submit(execute, config, spec, out_dir) for spec in pending}
+                try:
+                    while futures:
+                        finished, futures = wait(futures, return_when=FIRST_COMPLETED)
+                        for future in finished:
+                            future.result()
+                            bar.update(1)
+                except BaseException:
+                    for future in futures:
+                        future.cancel()
+                    raise
+    finally:
+        bar.close()
+    return storage.read_records(out_dir, keys)
