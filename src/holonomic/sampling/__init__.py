@@ -3,6 +3,7 @@
 Built on the core integrators; the core never imports this package.
 """
 
+from holonomic.sampling.adaptive import AdaptiveLangevin
 from holonomic.sampling.diagnostics import (
     AutocorrelationTime,
     MixingSummary,
@@ -30,6 +31,7 @@ from holonomic.sampling.metrics import (
 )
 
 __all__ = [
+    "AdaptiveLangevin",
     "AutocorrelationTime",
     "MixingSummary",
     "MixingWarning",
