@@ -95,15 +95,16 @@ def _set_grads(free, ortho, target, gen=None, sigma=0.0):
         free.grad += sigma * torch.randn(free.shape, generator=gen, dtype=DTYPE)
 
 
-def _make(free, ortho, seed=3):
+def _make(free, ortho, seed=3, projection="rattle"):
     return AdaptiveLangevin(
         [{"params": [free]}, {"params": [ortho], "temperature": 0.05, "thermostat_mass": 2.0}],
-        step=0.05, temperature=0.3, friction=0.5, seed=seed)
+        step=0.05, temperature=0.3, friction=0.5, seed=seed, projection=projection)
 
 
-def test_resume_from_state_dict_is_bit_identical():
+@pytest.mark.parametrize("projection", ["rattle", "geodesic"])
+def test_resume_from_state_dict_is_bit_identical(projection):
     free, ortho, target = _two_group_problem()
-    opt = _make(free, ortho)
+    opt = _make(free, ortho, projection=projection)
     for _ in range(5):
         _set_grads(free, ortho, target)
         opt.step()
@@ -118,7 +119,7 @@ def test_resume_from_state_dict_is_bit_identical():
     with torch.no_grad():
         free.copy_(saved_weights[0])
         ortho.copy_(saved_weights[1])
-    resumed = _make(free, ortho, seed=99)  # the seed is restored from the state dict
+    resumed = _make(free, ortho, seed=99, projection=projection)  # the seed is restored from the state dict
     buffer.seek(0)
     resumed.load_state_dict(torch.load(buffer, weights_only=True))
     for _ in range(7):

@@ -109,12 +109,14 @@ def test_mixing_diagnostics_warns_only_when_unmixed():
     assert summary["loss"].chains == 4
     stuck = good.copy()
     stuck[:2] += 5.0
-    with pytest.warns(MixingWarning, match="R-hat"):
+    with pytest.warns(MixingWarning) as record:
         summary = mixing_diagnostics({"norm": stuck})
     assert summary["norm"].rhat > 1.1
+    assert any("R-hat" in str(r.message) for r in record)
     slow = ar1(0.995, 4, 500, seed=22)
-    with pytest.warns(MixingWarning, match="ESS"):
+    with pytest.warns(MixingWarning) as record:
         mixing_diagnostics({"slow": slow})
+    assert any("ESS" in str(r.message) for r in record)
 
 
 def test_bad_input_names_the_parameter():

@@ -35,20 +35,19 @@ for a per-step gradient noise of standard deviation :math:`\sigma_g`.
 from __future__ import annotations
 
 import math
-from typing import Any, Iterable
+from typing import Any, Callable, Iterable
 
 import torch
 from torch import Tensor
 
 from holonomic.dynamics.base import (
     ConstrainedOptimizer,
-    Pending,
     check_dataset_size,
     check_friction,
     check_temperature,
 )
 from holonomic.dynamics.operators import Phase, Settings, run_scheme
-from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of, parameter_label
+from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of
 from holonomic.geometry.base import check_positive
 
 __all__ = ["AdaptiveLangevin", "adaptive_thermostat", "update_thermostat_friction"]
@@ -169,6 +168,7 @@ class AdaptiveLangevin(ConstrainedOptimizer):
                         weight_decay=weight_decay, substeps=substeps)
         self._validate_group(defaults)
         self._xi: list[Tensor] = []
+        self._scratch: dict[str, Any] | None = None
         super().__init__(params, defaults, seed=seed)
 
     # -- groups ------------------------------------------------------------------------
@@ -219,70 +219,90 @@ class AdaptiveLangevin(ConstrainedOptimizer):
                     for x, old in zip(frictions, self._xi)]
 
     # -- stepping ----------------------------------------------------------------------
-    def _update(self, p, force, group, geometry):  # per-parameter hook is not used
-        raise NotImplementedError("AdaptiveLangevin steps whole param groups; see step()")
+    # The base class's step() runs the per-parameter hook _update and commits all updates
+    # transactionally. The thermostat couples the parameters of a group (it needs their
+    # summed kinetic energy between the first drift and the O step), so step() first runs
+    # the opening B A D of every group (_open_step: it only computes, nothing is written),
+    # then the base step() calls _update for O and the closing A of each parameter; the
+    # closing D is applied only once the base class has committed.
 
-    @torch.no_grad()
-    def step(self, closure=None):  # type: ignore[override]
-        """Take one step using the gradients in ``.grad`` (see the class docstring).
-
-        Raises:
-            IntegrationError: non-finite gradient or failed projection; nothing changed.
-        """
-        loss = None
-        if closure is not None:
-            with torch.enable_grad():
-                loss = closure()
-        saved_generators = {k: g.get_state() for k, g in self._generators.items()}
-        pending: list[Pending] = []
-        new_xi = list(self._xi)
+    def _open_step(self) -> dict[str, Any]:
+        """B, A and the first D for every group; returns scratch data (nothing written)."""
+        phases: dict[Tensor, tuple[int, Phase]] = {}
+        xi_half: list[Tensor | None] = [None] * len(self.param_groups)
+        dof = [0] * len(self.param_groups)
         for g_index, group in enumerate(self.param_groups):
             h = group["lr"]
-            if not h >= 0:
-                raise ValueError(f"param group {g_index}: step (group 'lr') must be >= 0, "
-                                 f"got {h!r}")
-            if h == 0:
+            if not h > 0:  # h == 0 skips the group; h < 0 is reported by the base step()
                 continue
-            settings = Settings(step=h, friction=group["friction"],
-                                temperature=group["temperature"],
-                                projection=group["projection"], substeps=group["substeps"])
-            members = []  # (index, param, label, geometry, force, grad_ok, phase)
-            names = group.get("param_names")
-            for index, p in enumerate(group["params"]):
-                if p.grad is None:
-                    continue
-                if p.grad.is_sparse:
-                    raise ValueError("sparse gradients are not supported; use a dense nn.Embedding")
-                default = names[index] if names else f"group {g_index} parameter {index} {tuple(p.shape)}"
-                label = parameter_label(p, default) if not names else default
+            settings = self._settings(group)
+            members = [p for p in group["params"]
+                       if p.grad is not None and not p.grad.is_sparse]
+            if not members:
+                continue
+            for p in members:
                 geometry = constraint_of(p) or UNCONSTRAINED
                 force = self.force(p, group)
                 momentum = self.state[p].get("momentum")
                 if momentum is None:
                     momentum = torch.zeros_like(p)
                 phase = Phase(w=p.detach(), p=momentum, ok=torch.isfinite(force).all())
-                members.append((index, p, label, geometry, force, torch.isfinite(p.grad).all(), phase))
-            if not members:
-                continue
-            dof = sum(geo.tangent_dof(p.shape) for _, p, _, geo, _, _, _ in members)
-            thermo = dict(dof=dof, temperature=settings.temperature,
-                          thermostat_mass=group["thermostat_mass"], duration=0.5 * h)
-            for _, p, _, geometry, force, _, phase in members:  # B A
                 run_scheme(_KICK_DRIFT, phase, force=force, geometry=geometry,
                            settings=settings, generator=None)
-            xi = update_thermostat_friction(new_xi[g_index], [m[-1].p for m in members], **thermo)
-            for _, p, _, geometry, _, _, phase in members:  # O
-                adaptive_thermostat(phase, xi=xi, noise_friction=settings.friction,
-                                    temperature=settings.temperature, step=h,
-                                    geometry=geometry, generator=self.generator(p.device))
-            xi = update_thermostat_friction(xi, [m[-1].p for m in members], **thermo)  # D
-            new_xi[g_index] = xi
-            for index, p, label, geometry, force, grad_ok, phase in members:  # A
-                run_scheme(_DRIFT, phase, force=force, geometry=geometry, settings=settings,
-                           generator=None)
-                ok = phase.ok & torch.isfinite(phase.p).all() & torch.isfinite(xi)
-                pending.append(Pending(p, label, g_index, index, geometry, grad_ok, ok,
-                                       phase.w, phase.p, phase.iterations))
-        self._commit(pending, saved_generators)  # raises, changing nothing, on failure
-        self._xi = new_xi
+                phases[p] = (g_index, phase)
+                dof[g_index] += geometry.tangent_dof(p.shape)
+            xi_half[g_index] = update_thermostat_friction(
+                self._xi[g_index], [phases[p][1].p for p in members], dof=dof[g_index],
+                temperature=settings.temperature, thermostat_mass=group["thermostat_mass"],
+                duration=0.5 * h)
+        return {"phases": phases, "xi_half": xi_half, "dof": dof,
+                "kinetic": [[] for _ in self.param_groups]}
+
+    @staticmethod
+    def _settings(group: dict[str, Any]) -> Settings:
+        return Settings(step=group["lr"], friction=group["friction"],
+                        temperature=group["temperature"], projection=group["projection"],
+                        substeps=group["substeps"])
+
+    def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
+        """O and the closing A for one parameter (B and A were run by _open_step)."""
+        scratch = self._scratch
+        if scratch is None or p not in scratch["phases"]:
+            raise RuntimeError("AdaptiveLangevin._update is only called from step()")
+        g_index, phase = scratch["phases"][p]
+        settings = self._settings(group)
+        xi = scratch["xi_half"][g_index]
+        adaptive_thermostat(phase, xi=xi, noise_friction=settings.friction,
+                            temperature=settings.temperature, step=settings.step,
+                            geometry=geometry, generator=self.generator(p.device))
+        scratch["kinetic"][g_index].append(phase.p)
+        run_scheme(_DRIFT, phase, force=force, geometry=geometry, settings=settings,
+                   generator=None)
+        ok = phase.ok & torch.isfinite(phase.p).all() & torch.isfinite(xi)
+        return phase.w, phase.p, ok, phase.iterations
+
+    @torch.no_grad()
+    def step(self, closure: Callable[[], Tensor] | None = None) -> Tensor | None:  # type: ignore[override]
+        """Take one step using the gradients in ``.grad`` (see the class docstring).
+
+        Raises:
+            IntegrationError: non-finite gradient or failed projection; nothing changed
+                (weights, momenta, generator states, thermostat frictions).
+        """
+        loss = None
+        if closure is not None:
+            with torch.enable_grad():
+                loss = closure()
+        self._scratch = self._open_step()
+        try:
+            super().step()  # O, A per parameter; commits, or raises having changed nothing
+            scratch = self._scratch
+        finally:
+            self._scratch = None
+        for g_index, group in enumerate(self.param_groups):  # closing D, after the commit
+            if scratch["kinetic"][g_index]:
+                self._xi[g_index] = update_thermostat_friction(
+                    scratch["xi_half"][g_index], scratch["kinetic"][g_index],
+                    dof=scratch["dof"][g_index], temperature=group["temperature"],
+                    thermostat_mass=group["thermostat_mass"], duration=0.5 * group["lr"])
         return loss
