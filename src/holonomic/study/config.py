@@ -16,6 +16,7 @@ and the allowed values, e.g. ``study config: unknown key 'data.trian_size'; allo
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import json
 import math
@@ -298,6 +299,15 @@ def _parse_seeds(table: Mapping[str, Any]) -> tuple[int, ...]:
     raise _fail(f"'study.seeds' must be a count or a list of integers, got {value!r}")
 
 
+def _check_csv_target(path: Path, target: str) -> None:
+    with path.open(newline="") as handle:
+        header = next(csv.reader(handle), [])
+    columns = [h.strip() for h in header]
+    if target not in columns:
+        raise _fail(f"target column 'data.target' = {target!r} is missing from {str(path)!r}; "
+                    f"columns: {', '.join(columns) or '(no header)'}")
+
+
 def _parse_data(table: Mapping[str, Any], base_dir: Path) -> DataConfig:
     _check_keys(table, ("source", "target", "train_size", "val_fraction", "test_fraction",
                         "standardize"), "data")
@@ -311,6 +321,8 @@ def _parse_data(table: Mapping[str, Any], base_dir: Path) -> DataConfig:
         if not full.is_file():
             raise _fail(f"'data.source' file does not exist: {str(full)!r}; give a path "
                         "relative to the study file or an absolute path")
+        if full.suffix.lower() == ".csv":
+            _check_csv_target(full, _get_str(table, "target", "data", "target"))
     val_fraction = _get_float(table, "val_fraction", "data", 0.2, 0.0, 1.0, True, True)
     test_fraction = _get_float(table, "test_fraction", "data", 0.3, 0.0, 1.0, True, True)
     if val_fraction + test_fraction >= 1.0:

@@ -39,16 +39,16 @@ temperature = 0.0
 [arms.none]
 
 [arms.weight_decay]
-grid = [1e-4, 1e-3, 1e-2]
+grid = [1e-3, 1e-2, 1e-1]
 
 [arms.max_norm]
-grid = [0.5, 1.0, 2.0]
+grid = [0.25, 0.5, 1.0]
 
 [arms.fixed_norm]
-grid = [0.5, 1.0, 2.0]
+grid = [0.25, 0.5, 1.0]
 
 [arms.orthonormal]
-grid = [0.5, 1.0, 2.0]
+grid = [0.25, 0.5, 1.0]
 """
 
 

@@ -57,8 +57,8 @@ def select_settings(config: StudyConfig, records: dict[str, dict]) -> dict[str, 
     for arm in config.arms:
         means = []
         for i in range(len(arm.grid)):
-            values = [_metric(records[RunSpec(arm.name, i, s, seed).key], config.selection)
-                      for seed, s in ((seed, arm.grid[i]) for seed in config.seeds)]
+            values = [_metric(records[RunSpec(arm.name, i, arm.grid[i], seed).key],
+                              config.selection) for seed in config.seeds]
             means.append(float(np.mean(values)) if all(map(math.isfinite, values)) else math.nan)
         best = None
         for i, m in enumerate(means):
@@ -289,6 +289,13 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
               "constraint arms are held on their sets inside the integrator (RATTLE).",
               "- Test metrics exist for every run in results.csv; only the chosen settings' "
               "test metrics are quoted here, and nothing was chosen with them.", ""]
+    edges = [f"{name} ({arm['chosen_strength']:g})" for name, arm in summary["arms"].items()
+             if arm["chosen_index"] is not None and len(arm["grid"]) > 1
+             and arm["chosen_index"] in (0, len(arm["grid"]) - 1)]
+    if edges:
+        lines += ["- Chosen at the edge of its grid: " + ", ".join(edges) + ". The best "
+                  "strength may lie outside the grid; widen it before drawing conclusions.",
+                  ""]
     if summary["runs"]["ok"] < summary["runs"]["total"]:
         lines += ["- Some runs failed or diverged (NaN metrics in results.csv); settings with "
                   "a failed seed were not eligible for selection.", ""]
@@ -296,7 +303,9 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
               "- `results.csv`: one row per arm, setting and seed (`chosen` flags the selected "
               "settings); `summary.json`: the numbers in this report; `runs/`: one record per "
               "run with its per-epoch history."]
-    lines += [f"- `{p}`" for p in plots]
+    for p in plots:
+        name, _, text = p.partition(": ")
+        lines.append(f"- `{name}`: {text}")
     return "\n".join(lines) + "\n"
 
 

@@ -142,9 +142,22 @@ def train_run(config: StudyConfig, spec: RunSpec,
     norms and the constraint residual are logged. Test metrics are computed for every run
     but the study never uses them to choose settings.
 
+    Torch runs single-threaded inside (restored afterwards): the models are small, so
+    threads only add overhead, and results do not depend on the thread count.
+
     A failed integration step (``holonomic.IntegrationError``) or a non-finite loss ends the
     run with ``status`` ``"failed"`` / ``"diverged"`` and NaN metrics; the study reports it.
     """
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        return _train_run(config, spec, hooks, return_model)
+    finally:
+        torch.set_num_threads(threads)
+
+
+def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | None,
+               return_model: bool) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
     dtype = _DTYPES[config.budget.dtype]
     split = make_split(load_dataset(config), config.data, spec.seed)
     data = _tensors(split, dtype)
@@ -249,20 +262,24 @@ def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str) -
 
 
 def _execute(config: StudyConfig, spec: RunSpec, out_dir: str) -> str:
-    """Train one run and store its record; single-threaded torch for reproducibility."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    try:
-        record = train_run(config, spec)
-    finally:
-        torch.set_num_threads(threads)
-    storage.write_record(out_dir, record)
+    """Train one run and store its record."""
+    storage.write_record(out_dir, train_run(config, spec))
     return spec.key
 
 
 def _worker_init() -> None:
     torch.set_num_threads(1)
     os.environ.setdefault("OMP_NUM_THREADS", "1")
+
+
+def _context():
+    """``fork`` where available (workers start at once: torch is already imported; the
+    parent has run no torch computation), else ``spawn``."""
+    import multiprocessing
+
+    if "fork" in multiprocessing.get_all_start_methods():
+        return get_context("fork")
+    return get_context("spawn")
 
 
 def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str | Path) -> None:
@@ -307,7 +324,7 @@ def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
                 execute(config, spec, out_dir)
                 bar.update(1)
         else:
-            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn"),
+            with ProcessPoolExecutor(max_workers=workers, mp_context=_context(),
                                      initializer=_worker_init) as pool:
                 futures = {pool.submit(execute, config, spec, out_dir) for spec in pending}
                 try:
