@@ -186,6 +186,11 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
             IntegrationError: a non-finite gradient or a failed projection;
                 nothing (weights, momenta, generator states) is changed.
         """
+        if not getattr(self, "_first_step_checked", False):
+            from holonomic.distributed import on_first_step  # lazy: only runs checks under torch.distributed
+
+            on_first_step(self)  # ranks agree (seed, weights), no FSDP shards; raises with nothing changed
+            self._first_step_checked = True
         loss = None
         if closure is not None:
             with torch.enable_grad():
