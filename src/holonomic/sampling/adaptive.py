@@ -40,19 +40,13 @@ from typing import Any, Callable, Iterable
 import torch
 from torch import Tensor
 
-from holonomic.dynamics.base import (
-    ConstrainedOptimizer,
-    check_dataset_size,
-    check_friction,
-    check_temperature,
-)
+from holonomic.dynamics.base import ConstrainedOptimizer
+from holonomic.dynamics.langevin import Langevin
 from holonomic.dynamics.operators import Phase, Settings, run_scheme
 from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of
 from holonomic.geometry.base import check_positive
 
 __all__ = ["AdaptiveLangevin", "adaptive_thermostat", "update_thermostat_friction"]
-
-_PROJECTIONS = ("rattle", "geodesic")
 
 #: Opening part of a step: fused kick and first half drift (core operators).
 _KICK_DRIFT: tuple[tuple[str, float], ...] = (("kick", 1.0), ("drift", 0.5))
@@ -98,7 +92,7 @@ def update_thermostat_friction(xi: Tensor, momenta: list[Tensor], *, dof: int, t
     return xi + (duration / thermostat_mass) * (twice_kinetic / (dof * temperature) - 1.0)
 
 
-class AdaptiveLangevin(ConstrainedOptimizer):
+class AdaptiveLangevin(Langevin):
     r"""Constrained Langevin dynamics whose friction adapts to unknown gradient noise.
 
     One ``step()`` with step ``h``, per param group (B, A from the core; D the thermostat
@@ -112,7 +106,8 @@ class AdaptiveLangevin(ConstrainedOptimizer):
         xi <- xi + (h/2)/m (sum |P|^2 / (N_f T) - 1)                           D
         for each parameter:   W, P <- drift(W, P, h/2)                         A
 
-    :math:`\xi` starts at ``friction`` (= A). As in :class:`holonomic.Langevin`,
+    :math:`\xi` starts at ``friction`` (= A). A subclass of :class:`holonomic.Langevin`:
+    the inherited ``from_sgd`` maps ``momentum`` to ``friction`` (A) the same way. As in :class:`holonomic.Langevin`,
     ``state[p]["momentum"]`` holds P before the closing half kick; ``f = dataset_size *
     grad + weight_decay * W``; the temperature is in the units of the loss (see
     :class:`holonomic.Langevin` for ``dataset_size``). The thermostat frictions (one 0-d
@@ -169,26 +164,18 @@ class AdaptiveLangevin(ConstrainedOptimizer):
         self._validate_group(defaults)
         self._xi: list[Tensor] = []
         self._scratch: dict[str, Any] | None = None
-        super().__init__(params, defaults, seed=seed)
+        # Langevin.__init__ would validate defaults without the thermostat keys; the
+        # bookkeeping lives in ConstrainedOptimizer.
+        ConstrainedOptimizer.__init__(self, params, defaults, seed=seed)
 
     # -- groups ------------------------------------------------------------------------
     def _validate_group(self, group: dict[str, Any]) -> None:
+        super()._validate_group(group)  # Langevin's checks (friction, projection, ...)
         group["temperature"] = check_positive("temperature", group["temperature"])
-        friction = check_friction(group["friction"])
-        if math.isinf(friction):
+        if math.isinf(group["friction"]):
             raise ValueError("friction must be finite for AdaptiveLangevin (it is the initial "
                              f"thermostat friction), got {group['friction']!r}")
-        group["friction"] = friction
         group["thermostat_mass"] = check_positive("thermostat_mass", group["thermostat_mass"])
-        group["dataset_size"] = check_dataset_size(group["dataset_size"])
-        group["weight_decay"] = check_positive("weight_decay", group["weight_decay"],
-                                               allow_zero=True)
-        if group["projection"] not in _PROJECTIONS:
-            raise ValueError(f"projection must be one of {_PROJECTIONS}, "
-                             f"got {group['projection']!r}")
-        substeps = group["substeps"]
-        if isinstance(substeps, bool) or not isinstance(substeps, int) or substeps < 1:
-            raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
 
     def add_param_group(self, param_group: dict[str, Any]) -> None:
         super().add_param_group(param_group)

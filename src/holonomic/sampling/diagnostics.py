@@ -74,7 +74,7 @@ class AutocorrelationTime:
     """Integrated autocorrelation time with its window and Madras-Sokal standard error.
 
     Attributes:
-        tau: :math:`1 + 2\\sum_{t=1}^{M}\\rho(t)`.
+        tau: :math:`1 + 2\\sum_{t=1}^{M}\\rho(t)`, floored at :math:`1/\\log_{10} N`.
         window: the cut-off :math:`M` chosen by Sokal's rule.
         stderr: :math:`\\tau\\sqrt{2(2M+1)/N}`, N the total number of draws.
         window_found: False when no :math:`M < n` satisfied :math:`M \\ge c\\,\\tau(M)`;
@@ -187,7 +187,9 @@ def integrated_autocorrelation_time(chains, c: float = 5.0) -> AutocorrelationTi
     ok = lags >= c * taus
     found = bool(ok.any())
     window = int(lags[np.argmax(ok)]) if found else n - 1
-    tau = float(taus[window - 1])
+    # Short or strongly disagreeing chains can make the sum negative; cap the implied ESS at
+    # N log10(N) as Stan does (recalled from memory), so tau >= 1 / log10(N).
+    tau = max(float(taus[window - 1]), 1.0 / math.log10(max(m * n, 10)))
     stderr = abs(tau) * math.sqrt(2.0 * (2 * window + 1) / (m * n))
     return AutocorrelationTime(tau=tau, window=window, stderr=stderr, window_found=found,
                                draws=m * n)
