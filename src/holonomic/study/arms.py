@@ -84,7 +84,13 @@ def prepare_arm(name: str, strength: float, model: nn.Module) -> ArmSetup:
     if name == "orthonormal":
         for _, layer in hidden:
             over = "rows" if layer.out_features <= layer.in_features else "columns"
-            hn.constrain(layer, weight=hn.Orthonormal(over=over, scale=float(strength)))
+            constraint = hn.Orthonormal(over=over, scale=float(strength))
+            # Start from the nearest orthonormal point of the initial weights, found in
+            # float64: a random square init can be too ill-conditioned for a float32 SVD
+            # (ratio of singular values ~1e-5 happens), though its nearest point is unique.
+            with torch.no_grad():
+                layer.weight.copy_(constraint.project(layer.weight.double()))
+            hn.constrain(layer, weight=constraint)
         return ArmSetup(layers=names)
     raise ValueError(f"unknown arm {name!r}; allowed: none, weight_decay, max_norm, "
                      "fixed_norm, orthonormal")
