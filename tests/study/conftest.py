@@ -2,11 +2,10 @@
 
 from __future__ import annotations
 
-import tomllib
-
 import pytest
 
 from holonomic.study import parse_config
+from holonomic.study.demo import tomllib
 
 #: The demo study shrunk to seconds: 2 seeds, 2 grid points, 3 epochs, 64 training rows.
 TINY_TOML = """

@@ -20,7 +20,10 @@ import csv
 import hashlib
 import json
 import math
-import tomllib
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10: the same parser, packaged as tomli
+    import tomli as tomllib
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any, Mapping

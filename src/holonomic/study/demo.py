@@ -7,7 +7,10 @@ not measurements. The budget is sized to finish in about a minute on 2 cores.
 
 from __future__ import annotations
 
-import tomllib
+try:
+    import tomllib
+except ModuleNotFoundError:  # Python 3.10: the same parser, packaged as tomli
+    import tomli as tomllib
 from typing import Any
 
 from holonomic.study.config import StudyConfig, parse_config

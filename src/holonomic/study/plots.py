@@ -13,6 +13,8 @@ from holonomic.study.storage import atomic_write_bytes_from
 
 __all__ = ["write_plots"]
 
+_RESIDUAL_FLOOR = 1e-12
+
 
 def _pyplot():
     import matplotlib
@@ -104,10 +106,12 @@ def write_plots(config: StudyConfig, records: dict, chosen: dict, out_dir: Path)
             axes[0].plot(np.arange(1, norms.shape[1] + 1), norms.mean(axis=0), label=label)
         residual = _histories(config, records, arm.name, sel.index, "constraint_residual")
         if residual is not None and np.isfinite(residual).all():
-            worst = np.maximum(residual.max(axis=0), 1e-17)
+            worst = np.maximum(residual.max(axis=0), _RESIDUAL_FLOOR)
             axes[1].semilogy(np.arange(1, len(worst) + 1), worst, label=label)
     axes[0].set_title("mean row norm of hidden weights", fontsize=9)
-    axes[1].set_title("constraint residual (max over seeds; floor 1e-17)", fontsize=9)
+    axes[1].set_title("constraint residual, max over seeds (values below 1e-12 drawn at "
+                      "1e-12)", fontsize=9)
+    axes[1].set_ylim(_RESIDUAL_FLOOR / 10, 1.0)
     for ax in axes:
         ax.set_xlabel("epoch")
         ax.legend(fontsize=7)
