@@ -13,23 +13,30 @@ from holonomic.sampling import AdaptiveLangevin
 DTYPE = torch.float64
 
 
-def _rows_on_sphere(rows: int, d: int, seed: int) -> torch.nn.Linear:
+class _AmbientDofFixedNorm(FixedNorm):
+    """Deliberately wrong: reports the ambient size rows*d as the degrees of freedom."""
+
+    def tangent_dof(self, shape):
+        return math.prod(shape)
+
+
+def _rows_on_sphere(rows: int, d: int, seed: int, constraint=None) -> torch.nn.Linear:
     """A bias-free linear layer whose rows are independent chains on the unit sphere."""
     layer = torch.nn.Linear(d, rows, bias=False).to(DTYPE)
     with torch.no_grad():
         layer.weight.copy_(torch.randn(rows, d, generator=torch.Generator().manual_seed(seed),
                                        dtype=DTYPE))
-    return constrain(layer, weight=FixedNorm(1.0))
+    return constrain(layer, weight=constraint or FixedNorm(1.0))
 
 
 def _vmf_mean_resultant(optimizer_factory, *, sigma_g, rows=1000, d=3, steps=1200, burn_in=300,
-                        every=5, seed=0):
+                        every=5, seed=0, constraint=None):
     """Run U(W) = -sum_i a.w_i on unit-norm rows with N(0, sigma_g^2) added to every gradient.
 
     Returns (estimate of E[a.w], its standard error, optimizer). Rows are independent chains,
     so the standard error is the spread of per-row time averages over sqrt(rows).
     """
-    layer = _rows_on_sphere(rows, d, seed)
+    layer = _rows_on_sphere(rows, d, seed, constraint)
     w = layer.weight
     opt = optimizer_factory([w])
     a = torch.zeros(d, dtype=DTYPE)
@@ -74,6 +81,14 @@ def test_vmf_with_unknown_gradient_noise_adaptive_right_plain_hot():
     assert truth - hot > 20.0 * math.hypot(se, hot_se), (hot, truth)
     hot_truth = special.ive(d / 2, kappa / 2) / special.ive(d / 2 - 1, kappa / 2)
     assert abs(hot - hot_truth) < 0.03  # common practice, no source: loose check of the 2T story
+
+    # Counting ambient instead of tangent degrees of freedom (3 instead of 2 per row) makes the
+    # thermostat aim at 1.5 T: the same test must fail (A_3(kappa / 1.5) = 0.70).
+    wrong, wrong_se, _ = _vmf_mean_resultant(
+        lambda p: AdaptiveLangevin(p, step=step, temperature=temperature, friction=friction,
+                                   seed=1),
+        sigma_g=sigma_g, d=d, constraint=_AmbientDofFixedNorm(1.0))
+    assert truth - wrong > 20.0 * math.hypot(se, wrong_se), (wrong, truth)
 
 
 def _two_group_problem(seed=0):

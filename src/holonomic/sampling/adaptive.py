@@ -106,9 +106,10 @@ class AdaptiveLangevin(Langevin):
         xi <- xi + (h/2)/m (sum |P|^2 / (N_f T) - 1)                           D
         for each parameter:   W, P <- drift(W, P, h/2)                         A
 
-    :math:`\xi` starts at ``friction`` (= A). A subclass of :class:`holonomic.Langevin`:
-    the inherited ``from_sgd`` maps ``momentum`` to ``friction`` (A) the same way. As in :class:`holonomic.Langevin`,
-    ``state[p]["momentum"]`` holds P before the closing half kick; ``f = dataset_size *
+    :math:`\xi` starts at ``friction`` (= A). A subclass of :class:`holonomic.Langevin`
+    (note the argument order: ``temperature`` comes before ``friction`` and is required);
+    the inherited ``from_sgd`` maps ``momentum`` to ``friction`` (A) the same way. As in
+    :class:`holonomic.Langevin`, ``state[p]["momentum"]`` holds P before the closing half kick; ``f = dataset_size *
     grad + weight_decay * W``; the temperature is in the units of the loss (see
     :class:`holonomic.Langevin` for ``dataset_size``). The thermostat frictions (one 0-d
     float64 tensor per group) are checkpointed in ``state_dict()["thermostat_friction"]``
@@ -222,6 +223,9 @@ class AdaptiveLangevin(Langevin):
             h = group["lr"]
             if not h > 0:  # h == 0 skips the group; h < 0 is reported by the base step()
                 continue
+            if not group["temperature"] > 0:
+                raise ValueError(f"param group {g_index}: AdaptiveLangevin needs temperature "
+                                 f"> 0, got {group['temperature']!r}; use Langevin for T = 0")
             settings = self._settings(group)
             members = [p for p in group["params"]
                        if p.grad is not None and not p.grad.is_sparse]
