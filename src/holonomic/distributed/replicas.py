@@ -18,12 +18,17 @@ different models cannot deadlock the collective)::
                  (hashes are SHA-256 digests cut into 48-bit integers,
                  which float64 holds exactly)
     float part   A = sum_i (i+1) sum(w_i),  B = sum_i (i+1) sum(w_i^2),
-                 C = sum_i (i+1) sum|w_i|   (weights, accumulated in float64)
-                 and the same three for the momenta, if any
+                 C = sum_i (i+1) sum|w_i|,
+                 R = sum_i (i+1) sum_r (r+1)/rows_i sum(w_i[r])  (rows r of
+                 parameter i; catches rows in a different order), all
+                 accumulated in float64, and the same four for the momenta
+
+It is a checksum, not a proof: e.g. swapped columns inside one tensor keep
+every sum.
 
 One ``all_reduce(MAX)`` of ``[v, -v]`` gives the largest and smallest value of
 every entry over the ranks.  Exact parts must agree exactly; ``A`` and ``B``
-must agree to ``1e-9`` relative to ``C`` and ``B`` (reduction order may differ
+and ``R`` must agree to ``1e-9`` relative to ``C`` and ``B`` (reduction order may differ
 between devices of different kinds, so equal weights need not give equal
 sums to the last bit; a real mismatch -- a different initialisation or seed
 -- changes them at order one).  Tolerance: common practice, no source.
@@ -52,8 +57,8 @@ _FIELDS = (
     *(f"settings{i}" for i in range(_HASH_WORDS)),
     *(f"randomness{i}" for i in range(_HASH_WORDS)),
     "seed",
-    "w_sum", "w_square", "w_abs",
-    "p_count", "p_sum", "p_square", "p_abs",
+    "w_sum", "w_square", "w_abs", "w_rows",
+    "p_count", "p_sum", "p_square", "p_abs", "p_rows",
 )
 _INDEX = {name: i for i, name in enumerate(_FIELDS)}
 
@@ -88,6 +93,10 @@ def _setting_bytes(group: dict[str, Any]) -> bytes:
         value = group[key]
         if isinstance(value, float):
             value = struct.pack("<d", value).hex()  # exact, and NaN-safe
+        elif isinstance(value, Tensor) and value.numel() == 1:
+            value = struct.pack("<d", float(value)).hex()  # e.g. a tensor learning rate
+        elif not isinstance(value, (bool, int, str, type(None))):
+            value = type(value).__name__  # other objects: repr may hold a memory address
         parts.append(f"{key}={value!r}")
     return ";".join(parts).encode()
 
@@ -104,11 +113,13 @@ def _randomness_bytes(optimizer: torch.optim.Optimizer) -> bytes:
 
 
 def _weighted_sums(tensors: list[tuple[int, Tensor]], device: torch.device) -> Tensor:
-    """``[sum_i (i+1) sum(x_i), sum_i (i+1) sum(x_i^2), sum_i (i+1) sum|x_i|]`` in float64."""
-    out = torch.zeros(3, dtype=torch.float64, device=device)
+    """``[A, B, C, R]`` of the module docstring, in float64."""
+    out = torch.zeros(4, dtype=torch.float64, device=device)
     for i, x in tensors:
         x = x.detach().to(torch.float64)
-        sums = torch.stack([x.sum(), (x * x).sum(), x.abs().sum()]) * float(i + 1)
+        rows = x.reshape(x.shape[0], -1).sum(1) if x.dim() else x.reshape(1)
+        ramp = torch.arange(1, rows.numel() + 1, dtype=torch.float64, device=x.device) / rows.numel()
+        sums = torch.stack([x.sum(), (x * x).sum(), x.abs().sum(), (rows * ramp).sum()]) * float(i + 1)
         out += sums.to(device)
     return out
 
@@ -168,10 +179,11 @@ def _differences(high: Tensor, low: Tensor) -> tuple[str, ...]:
         out.append("settings")
     if not exact("seed", *(f"randomness{i}" for i in range(_HASH_WORDS))):
         out.append("randomness")
-    if not (close("w_sum", "w_abs") and close("w_square", "w_square") and close("w_abs", "w_abs")):
+    if not (close("w_sum", "w_abs") and close("w_square", "w_square") and close("w_abs", "w_abs")
+            and close("w_rows", "w_abs")):
         out.append("weights")
     if not (exact("p_count") and close("p_sum", "p_abs") and close("p_square", "p_square")
-            and close("p_abs", "p_abs")):
+            and close("p_abs", "p_abs") and close("p_rows", "p_abs")):
         out.append("momenta")
     return tuple(out)
 
