@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from holonomic.cli import main
-from holonomic.study import run_study
+from holonomic.study import StudyConfigError, parse_config, run_study
 from holonomic.study.runner import _execute, plan_runs, run_all
 
 OUTPUTS = ("results.csv", "summary.json", "report.md", "gap_vs_strength.png",
@@ -66,7 +66,7 @@ def test_cli_study_outputs_are_complete_and_consistent(tmp_path, tiny_config, ti
 
 
 @pytest.mark.slow
-def test_same_study_twice_identical_and_resume_matches(tmp_path, tiny_config):
+def test_same_study_twice_identical_and_resume_matches(tmp_path, tiny_config, tiny_doc):
     first = tmp_path / "first"
     run_study(tiny_config, first, progress=False, plots=False)
     second = tmp_path / "second"
@@ -101,6 +101,18 @@ def test_same_study_twice_identical_and_resume_matches(tmp_path, tiny_config):
     run_study(tiny_config, resumed, progress=False, plots=False)
     assert (resumed / "results.csv").read_text() == reference
     assert len(records) == len(plan_runs(tiny_config))
+
+    # a grown grid reuses the runs it has (keys name the strength, not the position)
+    tiny_doc["arms"]["fixed_norm"]["grid"] = [0.5, 1.0]
+    for arm in ("weight_decay", "max_norm", "orthonormal"):
+        tiny_doc["arms"][arm]["grid"] = tiny_doc["arms"][arm]["grid"][:2]
+    trained.clear()
+    run_all(parse_config(tiny_doc), resumed, progress=False, execute=counting)
+    assert sorted(trained) == ["fixed_norm-1.0-s0", "fixed_norm-1.0-s1"]
+    # a changed budget is refused rather than mixed in
+    tiny_doc["budget"]["epochs"] = 4
+    with pytest.raises(StudyConfigError, match="different data, model or budget"):
+        run_all(parse_config(tiny_doc), resumed, progress=False, execute=counting)
 
 
 @pytest.mark.slow

@@ -30,7 +30,8 @@ def _save(fig, path: Path) -> None:
 
 
 def _histories(config: StudyConfig, records: dict, arm: str, index: int, name: str):
-    rows = [records[RunSpec(arm, index, 0.0, seed).key]["history"][name]
+    strength = config.arm(arm).grid[index]
+    rows = [records[RunSpec(arm, index, strength, seed).key]["history"][name]
             for seed in config.seeds]
     length = min(len(r) for r in rows)
     if length == 0:
@@ -50,7 +51,7 @@ def write_plots(config: StudyConfig, records: dict, chosen: dict, out_dir: Path)
     for ax, arm in zip(axes[0], tuned):
         means, errs = [], []
         for i in range(len(arm.grid)):
-            vals = np.array([records[RunSpec(arm.name, i, 0.0, s).key]["metrics"]
+            vals = np.array([records[RunSpec(arm.name, i, arm.grid[i], s).key]["metrics"]
                              ["val_gap_accuracy"] for s in config.seeds])
             means.append(np.mean(vals))
             errs.append(np.std(vals, ddof=1) / math.sqrt(len(vals)))

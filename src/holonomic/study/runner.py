@@ -62,8 +62,12 @@ class RunSpec:
 
     @property
     def key(self) -> str:
-        """File-name key, unique per (arm, grid index, seed)."""
-        return f"{self.arm}-g{self.index}-s{self.seed}"
+        """File-name key, unique per (arm, strength, seed), e.g. ``fixed_norm-0.5-s3``.
+
+        It names the strength rather than its grid position, so a study whose grid grows
+        reuses the runs it already has and never mistakes one strength for another.
+        """
+        return f"{self.arm}-{float(self.strength)!r}-s{self.seed}"
 
 
 def plan_runs(config: StudyConfig) -> list[RunSpec]:
@@ -286,6 +290,11 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
     """Refuse to mix runs of a different study (data, model or budget changed)."""
     expected = config.training_fingerprint()
     for key, record in records.items():
+        spec = RunSpec(record.get("arm", "?"), 0, float(record.get("strength", "nan")),
+                       record.get("seed", -1))
+        if spec.key != key:
+            raise StudyConfigError(f"study config: {str(out_dir)!r} holds a file {key!r} whose "
+                                   f"record is for run {spec.key!r}; delete it")
         if record.get("fingerprint") != expected:
             raise StudyConfigError(
                 f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "

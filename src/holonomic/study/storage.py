@@ -2,10 +2,10 @@
 
 Layout of ``--out DIR``::
 
-    DIR/runs/<arm>-g<grid index>-s<seed>.json   one finished run each (written atomically)
+    DIR/runs/<arm>-<strength>-s<seed>.json   one finished run each (written atomically)
     DIR/results.csv, summary.json, report.md, *.png
 
-A run's file name depends only on its arm, grid index and seed, so processes that split the
+A run's file name depends only on its arm, strength and seed, so processes that split the
 run list between them (shards, workers) never write the same file, and merging is a
 directory listing. Every file is written to a hidden temporary file in the same directory
 and then renamed with :func:`os.replace`, so an interrupted study leaves either the old file
