@@ -73,6 +73,13 @@ class Pending:
     iterations: int
 
 
+def step_label(p: Tensor, names: list[str] | None, group: int, index: int) -> str:
+    """Readable name of a parameter for step diagnostics and error messages."""
+    if names:
+        return names[index]
+    return parameter_label(p, f"group {group} parameter {index} {tuple(p.shape)}")
+
+
 def check_temperature(value: Any) -> float:
     return check_positive("temperature", value, allow_zero=True)
 
@@ -195,6 +202,20 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
+        self._take_step()
+        return loss
+
+    #: Internal switch: ``True`` forces the plain per-parameter path, the
+    #: reference that every fast path is tested against (tests/speed).
+    _reference: bool = False
+
+    def _take_step(self) -> None:
+        """One step from the gradients in ``.grad`` (subclasses may add fast paths
+        that fall back to :meth:`_reference_step`)."""
+        self._reference_step()
+
+    def _reference_step(self) -> None:
+        """The plain path: one :meth:`_update` per parameter, then one commit."""
         saved_generators = {k: g.get_state() for k, g in self._generators.items()}
         pending: list[Pending] = []
         for g_index, group in enumerate(self.param_groups):
@@ -209,15 +230,13 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
                     continue
                 if p.grad.is_sparse:
                     raise ValueError("sparse gradients are not supported; use a dense nn.Embedding")
-                default = names[index] if names else f"group {g_index} parameter {index} {tuple(p.shape)}"
-                label = parameter_label(p, default) if not names else default
+                label = step_label(p, names, g_index, index)
                 geometry = constraint_of(p) or UNCONSTRAINED
                 grad_ok = torch.isfinite(p.grad).all()
                 position, momentum, ok, iterations = self._update(p, self.force(p, group), group, geometry)
                 pending.append(Pending(p, label, g_index, index, geometry, grad_ok, ok, position,
                                        momentum, iterations))
         self._commit(pending, saved_generators)
-        return loss
 
     def _commit(self, pending: list[Pending], saved_generators: dict[str, Tensor]) -> None:
         if not pending:

@@ -15,6 +15,7 @@ from holonomic.dynamics.base import (
     check_friction,
     check_temperature,
 )
+from holonomic.dynamics.fast import fast_baoab_step
 from holonomic.dynamics.operators import BAOAB, Phase, Settings, overdamped_move, run_scheme
 from holonomic.geometry import Constraint
 from holonomic.geometry.base import check_positive
@@ -169,6 +170,14 @@ class Langevin(ConstrainedOptimizer):
         substeps = group["substeps"]
         if isinstance(substeps, bool) or not isinstance(substeps, int) or substeps < 1:
             raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
+
+    def _take_step(self) -> None:
+        """The fast path (:mod:`holonomic.dynamics.fast`) for the BAOAB scheme,
+        falling back to the plain path when a check fails."""
+        if self._reference or self.scheme is not BAOAB or type(self)._update is not Langevin._update:
+            self._reference_step()
+        elif not fast_baoab_step(self):
+            self._reference_step()
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
         state = self.state[p]

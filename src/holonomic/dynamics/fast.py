@@ -1,0 +1,314 @@
+r"""Fast path of the BAOAB step for fixed-norm and unconstrained parameters.
+
+The plain path (:func:`holonomic.dynamics.operators.run_scheme`, one
+parameter at a time) is the reference; this module computes the same step
+with far fewer passes over memory, and the parity tests in ``tests/speed``
+compare the two in float64.
+
+**Fixed norm: the step stays in a small span.**  For one constrained vector
+``w`` (a row, a column or the whole tensor), momentum ``p`` and force ``f``,
+every vector that one BAOAB step forms is a combination of ``w``,
+``q = p - h f`` and the thermostat noise ``xi``.  So the step needs only the
+Gram matrix of those vectors (one reduction per pair), a few scalar
+operations per vector (the two SHAKE roots and three tangent projections, all
+in closed form), and one final pass that writes::
+
+    input:  w, q = p - h f, xi (T > 0);  Gram entries ww, wq, qq (, wxi, qxi, xixi)
+    B:      p1 = q - (w.q / w.w) w
+    A:      w1 = y + lam1 w,  y = w + s p1,  s = h/2       (SHAKE root from the Gram)
+            p1 <- Pi_w1 (w1 - w)/s
+    O:      p2 = Pi_w1 (e^{-gamma h} p1 + sigma xi)
+    A:      w2 = w1 + s p2 + lam2 w1,  p3 = Pi_w2 (w2 - w1)/s
+    return: w2 = a_w w + a_q q + a_xi xi,  p3 = c_w w + c_q q + c_xi xi
+
+The exact identities ``w.p1 = 0`` and ``w1.p2 = 0`` (the momenta are tangent
+after each projection) are used symbolically; the plain path meets them to
+roundoff, so the two paths agree to roundoff.  The constraint itself is not
+assumed: ``|w|^2`` is measured every step, so SHAKE corrects any drift
+exactly as the plain path does.
+
+**Unconstrained parameters** take the same scheme with identity projections,
+with ``torch._foreach_*`` arithmetic across the parameters of a group.
+
+**Transactions.**  Noise is drawn in the same order as the plain path (same
+generator stream).  All checks (finite Gram entries and coefficients, real
+SHAKE roots, finite unconstrained results) are gathered into one flag that
+is read with one host synchronisation *before* anything is written.  If it
+fails, the generators are restored and the caller runs the plain path, which
+then raises the documented error (or, for a false alarm such as an
+overflowing Gram entry, takes the step).  Parameters the fast path does not
+cover (orthonormal, non-contiguous, geodesic projection, substeps) go through
+the plain per-parameter update inside the same transaction.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any, Callable
+
+import torch
+from torch import Tensor
+
+from holonomic.dynamics.base import ParameterStepInfo, Pending, StepInfo, step_label
+from holonomic.geometry import UNCONSTRAINED, FixedNorm, Unconstrained, constraint_of
+
+if TYPE_CHECKING:  # pragma: no cover
+    from holonomic.dynamics.langevin import Langevin
+
+__all__ = ["fast_baoab_step", "sphere_baoab_coefficients"]
+
+# A coefficient vector: the weights of (w, q, xi) for every constrained vector.
+Coefs = tuple[Tensor, Tensor, Tensor | None]
+
+
+def _vectors(w: Tensor, over: str) -> tuple[Tensor, int]:
+    """A 2-D view of ``w`` and the dimension that runs along one constrained vector."""
+    if over == "all":
+        return w.view(1, -1), 1
+    m = w.view(w.shape[0], -1)
+    return m, (1 if over == "rows" else 0)
+
+
+def _dot(a: Tensor, b: Tensor, dim: int) -> Tensor:
+    """Dot products of matching vectors (``linalg.vecdot`` is much slower on CPU)."""
+    return (a * b).sum(dim)
+
+
+def _shake_root(norm2: Tensor, step2: Tensor, r2: Tensor) -> tuple[Tensor, Tensor]:
+    r"""SHAKE multiplier for ``y = w + s p`` with ``w.p = 0``.
+
+    With ``a = |w|^2``, ``b = w.y = a``, ``c = |y|^2 - r^2 = a + s^2|p|^2 - r^2``
+    the root that vanishes with the step is ``-c / (b + sqrt(b^2 - a c))``
+    (FixedNorm.shake); ``b^2 - a c = a (r^2 - s^2 |p|^2)``.
+    Returns ``(lam, disc)``; the root is real when ``disc >= 0``.
+    """
+    c = norm2 + step2 - r2
+    disc = norm2 * (r2 - step2)
+    lam = -c / (norm2 + disc.clamp_min(0).sqrt())
+    return lam, disc
+
+
+def sphere_baoab_coefficients(
+    gram: dict[str, Tensor], r2: Tensor, *, step: float, decay: float, sigma: float
+) -> tuple[Coefs, Coefs, Tensor, Tensor]:
+    r"""Closed-form BAOAB-RATTLE step on spheres, from Gram entries (module docstring).
+
+    ``gram`` holds per-vector tensors ``ww, wq, qq`` and, when ``sigma > 0``,
+    ``wx, qx, xx`` (``x`` the noise).  Returns the coefficients of the new
+    position and momentum in the basis ``(w, q, xi)``, the squared norm of the
+    new momentum per vector, and a 0-d flag (finite values, real SHAKE roots).
+    """
+    ww, wq, qq = gram["ww"], gram["wq"], gram["qq"]
+    s = 0.5 * step
+    zero = torch.zeros_like(ww)
+    # B: p1 = q - alpha w
+    alpha = wq / ww
+    pp = qq - alpha * wq
+    # A: w1 = (1 + lam1) w + s p1 ; u = (w1 - w)/s = (lam1/s) w + p1 ; p1 <- u - beta w1
+    lam1, disc1 = _shake_root(ww, s * s * pp, r2)
+    n1 = (1 + lam1) ** 2 * ww + s * s * pp
+    u_w1 = (1 + lam1) * (lam1 / s) * ww + s * pp
+    uu = (lam1 / s) ** 2 * ww + pp
+    beta = u_w1 / n1
+    w1 = (1 + lam1 - s * alpha, torch.full_like(ww, s))
+    u = (lam1 / s - alpha, torch.ones_like(ww))
+    pt = (u[0] - beta * w1[0], u[1] - beta * w1[1], zero)
+    pt2 = uu - beta * u_w1
+    # O: p2 = Pi_w1 (decay pt + sigma xi)
+    if sigma > 0:
+        wx, qx, xx = gram["wx"], gram["qx"], gram["xx"]
+        w1_x = w1[0] * wx + w1[1] * qx
+        pt_x = pt[0] * wx + pt[1] * qx
+        v2 = decay * decay * pt2 + 2 * decay * sigma * pt_x + sigma * sigma * xx
+        w1_v = sigma * w1_x
+        gamma = w1_v / n1
+        p2 = (decay * pt[0] - gamma * w1[0], decay * pt[1] - gamma * w1[1], torch.full_like(ww, sigma))
+        p2n = v2 - gamma * w1_v
+    else:
+        p2 = (decay * pt[0], decay * pt[1], zero)
+        p2n = decay * decay * pt2
+    # A: w2 = (1 + lam2) w1 + s p2 ; u2 = (lam2/s) w1 + p2 ; p3 = u2 - beta2 w2
+    lam2, disc2 = _shake_root(n1, s * s * p2n, r2)
+    n2 = (1 + lam2) ** 2 * n1 + s * s * p2n
+    u2_w2 = (1 + lam2) * (lam2 / s) * n1 + s * p2n
+    u2u2 = (lam2 / s) ** 2 * n1 + p2n
+    beta2 = u2_w2 / n2
+    w1x = (w1[0], w1[1], zero)
+    w2 = tuple((1 + lam2) * a + s * b for a, b in zip(w1x, p2))
+    u2 = tuple((lam2 / s) * a + b for a, b in zip(w1x, p2))
+    p3 = tuple(a - beta2 * b for a, b in zip(u2, w2))
+    p3n = (u2u2 - beta2 * u2_w2).clamp_min(0)
+    checks = torch.stack([ww, wq, qq, *w2, *p3, p2n, w2[0] - 0.5] + ([gram["xx"]] if sigma > 0 else []))
+    ok = torch.isfinite(checks).all() & (disc1 >= 0).all() & (disc2 >= 0).all() & (w2[0] > 0.5).all()
+    if sigma <= 0:
+        return (w2[0], w2[1], None), (p3[0], p3[1], None), p3n, ok
+    return w2, p3, p3n, ok  # type: ignore[return-value]
+
+
+@dataclass
+class _Entry:
+    """One parameter of the step, in parameter order."""
+
+    param: Tensor
+    label: str
+    group: int
+    index: int
+    dof: int
+    commit: Callable[[], Tensor | None] = field(default=lambda: None)  # returns kinetic energy
+    iterations: int = 0
+
+
+def _fast_eligible(p: Tensor, geometry: Any, group: dict[str, Any], state: dict[str, Any]) -> bool:
+    if group["projection"] != "rattle" or group["substeps"] != 1:
+        return False
+    if not (p.is_floating_point() and p.is_contiguous() and p.grad.is_contiguous()) or p.grad.dtype != p.dtype:
+        return False
+    momentum = state.get("momentum")
+    if momentum is not None and not (momentum.is_contiguous() and momentum.dtype == p.dtype):
+        return False
+    return isinstance(geometry, Unconstrained) or (isinstance(geometry, FixedNorm) and p.dim() >= 1)
+
+
+def fast_baoab_step(opt: "Langevin") -> bool:
+    """Take one BAOAB step of ``opt`` on the fast path; ``False`` (nothing
+    changed, generators restored) when a check failed and the caller should
+    run the plain path."""
+    saved = {k: g.get_state() for k, g in opt._generators.items()}
+    entries: list[_Entry] = []
+    flags: list[Tensor] = []
+    plain: list[tuple[_Entry, Pending]] = []
+    for g_index, group in enumerate(opt.param_groups):
+        h = group["lr"]
+        if not h > 0:
+            if h == 0:
+                continue
+            return _abandon(opt, saved)  # the plain path raises the documented error
+        temperature = group["temperature"]
+        gh = group["friction"] * h
+        decay = math.exp(-gh)
+        sigma = math.sqrt(temperature * -math.expm1(-2.0 * gh)) if temperature > 0 else 0.0
+        names = group.get("param_names")
+        spheres: list[tuple[_Entry, Tensor, Tensor, Tensor | None, dict[str, Tensor], Tensor, str]] = []
+        free: list[tuple[_Entry, Tensor, Tensor, Tensor, Tensor | None]] = []
+        for index, p in enumerate(group["params"]):
+            if p.grad is None:
+                continue
+            if p.grad.is_sparse:
+                return _abandon(opt, saved)
+            geometry = constraint_of(p) or UNCONSTRAINED
+            entry = _Entry(p, step_label(p, names, g_index, index), g_index, index, geometry.tangent_dof(p.shape))
+            entries.append(entry)
+            if not _fast_eligible(p, geometry, group, opt.state[p]):
+                grad_ok = torch.isfinite(p.grad).all()
+                position, momentum, ok, iterations = opt._update(p, opt.force(p, group), group, geometry)
+                flags.append(grad_ok & ok)
+                entry.iterations = iterations
+                plain.append((entry, Pending(p, entry.label, g_index, index, geometry, grad_ok, ok, position,
+                                             momentum, iterations)))
+                continue
+            force = opt.force(p, group)
+            momentum = opt.state[p].get("momentum")
+            w = p.detach()
+            q = torch.mul(force, -h) if momentum is None else torch.add(momentum, force, alpha=-h)
+            noise = (torch.randn(p.shape, generator=opt.generator(p.device), dtype=p.dtype, device=p.device)
+                     if temperature > 0 else None)
+            if isinstance(geometry, Unconstrained):
+                free.append((entry, w, q, force, noise))
+                continue
+            wv, dim = _vectors(w, geometry.over)
+            qv = q.view(wv.shape)
+            gram = {"ww": torch.linalg.vector_norm(wv, dim=dim) ** 2, "wq": _dot(wv, qv, dim),
+                    "qq": torch.linalg.vector_norm(qv, dim=dim) ** 2}
+            xv = None
+            if noise is not None:
+                xv = noise.view(wv.shape)
+                gram.update(wx=_dot(wv, xv, dim), qx=_dot(qv, xv, dim),
+                            xx=torch.linalg.vector_norm(xv, dim=dim) ** 2)
+            r2 = torch.full_like(gram["ww"], geometry.radius ** 2)
+            spheres.append((entry, wv, qv, xv, gram, r2, geometry.over))
+            entry.iterations = 1
+        if spheres:
+            flags.append(_plan_spheres(opt, spheres, h, decay, sigma))
+        if free:
+            flags.append(_plan_free(opt, free, h, decay, sigma))
+    if not entries:
+        opt.last_info = StepInfo(())
+        return True
+    if not bool(torch.stack(flags).all()):  # the one host synchronisation
+        return _abandon(opt, saved)
+    for entry, u in plain:
+        u.param.copy_(u.position)
+        kinetic = None
+        if u.momentum is not None:
+            opt.state[u.param]["momentum"] = u.momentum
+            kinetic = 0.5 * (u.momentum * u.momentum).sum()
+        entry.commit = (lambda k=kinetic: k)
+    infos = [ParameterStepInfo(e.label, e.group, e.index, e.iterations, e.commit(), e.dof) for e in entries]
+    opt.last_info = StepInfo(tuple(infos))
+    return True
+
+
+def _abandon(opt: "Langevin", saved: dict[str, Tensor]) -> bool:
+    for key, state in saved.items():
+        opt._generators[key].set_state(state)
+    for key in list(opt._generators):
+        if key not in saved:
+            del opt._generators[key]
+    return False
+
+
+def _plan_spheres(opt: "Langevin", spheres: list, h: float, decay: float, sigma: float) -> Tensor:
+    """Coefficients for all fixed-norm vectors of a group at once; sets each
+    entry's commit (the in-place write) and returns the group's flag."""
+    sizes = [g["ww"].numel() for _, _, _, _, g, _, _ in spheres]
+    keys = spheres[0][4].keys()
+    gram = {k: torch.cat([g[k] for _, _, _, _, g, _, _ in spheres]) for k in keys}
+    r2 = torch.cat([r for *_, r, _ in spheres])
+    new_w, new_p, p_norm2, ok = sphere_baoab_coefficients(gram, r2, step=h, decay=decay, sigma=sigma)
+    # Write w2 in place first, then p3 = e_w w2 + e_q q + e_x xi (with e_w = c_w / a_w, a_w > 1/2 checked).
+    e_w = new_p[0] / new_w[0]
+    e_q = new_p[1] - e_w * new_w[1]
+    e_x = None if new_p[2] is None else new_p[2] - e_w * new_w[2]
+    parts = [t.split(sizes) for t in (new_w[0], new_w[1], e_w, e_q, p_norm2)]
+    parts_x = [t.split(sizes) for t in (new_w[2], e_x)] if e_x is not None else None
+    for i, (entry, wv, qv, xv, _, _, over) in enumerate(spheres):
+        shape = (-1, 1) if over != "columns" else (1, -1)
+        a_w, a_q, c_w, c_q, pn = (t[i].view(shape) for t in parts)
+        a_x, c_x = (t[i].view(shape) for t in parts_x) if parts_x is not None else (None, None)
+
+        def commit(entry=entry, wv=wv, qv=qv, xv=xv, a_w=a_w, a_q=a_q, a_x=a_x, c_w=c_w, c_q=c_q, c_x=c_x, pn=pn):
+            wv.mul_(a_w).addcmul_(qv, a_q)
+            if xv is not None:
+                wv.addcmul_(xv, a_x)
+            qv.mul_(c_q).addcmul_(wv, c_w)
+            if xv is not None:
+                qv.addcmul_(xv, c_x)
+            opt.state[entry.param]["momentum"] = qv.view(entry.param.shape)
+            return 0.5 * pn.sum()
+
+        entry.commit = commit
+    return ok
+
+
+def _plan_free(opt: "Langevin", free: list, h: float, decay: float, sigma: float) -> Tensor:
+    """Unconstrained BAOAB (identity projections) with foreach arithmetic:
+    ``p1 = q``, ``w1 = w + s p1``, ``p2 = decay p1 + sigma xi``, ``w2 = w1 + s p2``."""
+    s = 0.5 * h
+    ws = [w for _, w, _, _, _ in free]
+    ps = [q for _, _, q, _, _ in free]
+    new_w = torch._foreach_add(ws, ps, alpha=s)
+    torch._foreach_mul_(ps, decay)
+    if sigma > 0:
+        torch._foreach_add_(ps, [x for *_, x in free], alpha=sigma)
+    torch._foreach_add_(new_w, ps, alpha=s)
+    p_norms = torch._foreach_norm(ps)
+    w_norms = torch._foreach_norm(new_w)
+    for (entry, w, q, _, _), nw, pn in zip(free, new_w, p_norms):
+        def commit(entry=entry, w=w, q=q, nw=nw, pn=pn):
+            w.copy_(nw)
+            opt.state[entry.param]["momentum"] = q
+            return 0.5 * pn * pn
+
+        entry.commit = commit
+    return torch.isfinite(torch.stack(p_norms + w_norms)).all()
