@@ -1,0 +1,3 @@
+from holonomic.bench.suite import main
+
+raise SystemExit(main())
