@@ -67,3 +67,19 @@ def test_arms_hold_their_sets_and_share_the_budget(tiny_config):
     assert records["fixed_norm"]["metrics"]["constraint_residual"] < 1e-5
     assert records["orthonormal"]["layers"] == ["0.weight", "2.weight"]
     assert math.isnan(records["weight_decay"]["metrics"]["constraint_residual"])
+
+
+def test_step_friction_budget_equals_its_sgd_mapping(tiny_doc):
+    # the two budget parametrisations are one integrator: step/friction from the mapping
+    # mu = exp(-gamma h), lr = h^2 (1 + mu) / 2 (the core's documented SGD mapping)
+    tiny_doc["budget"].update(dtype="float64", epochs=1)
+    sgd_view = parse_config(tiny_doc)
+    h, gamma = sgd_view.budget.step_friction()
+    del tiny_doc["budget"]["lr"], tiny_doc["budget"]["momentum"]
+    tiny_doc["budget"].update(step=h, friction=gamma)
+    langevin_view = parse_config(tiny_doc)
+    spec = RunSpec("fixed_norm", 0, 0.5, seed=1)
+    _, a = train_run(sgd_view, spec, return_model=True)
+    _, b = train_run(langevin_view, spec, return_model=True)
+    for p, q in zip(a.parameters(), b.parameters()):
+        assert torch.allclose(p, q, rtol=0, atol=1e-9)

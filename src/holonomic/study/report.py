@@ -280,6 +280,9 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
               + (" Fewer than 5 seeds: treat every interval as rough." if n_seeds < 5 else ""),
               "- An interval that includes 0 means the data cannot tell the arms apart at this "
               "sample size; it is not evidence that they are equal.",
+              "- A smaller gap is not by itself better generalisation: a model that fits the "
+              "training set less has a smaller gap at the same test accuracy. Read test "
+              "accuracy first, the gap second.",
               "- No correction for multiple comparisons (several arms, several metrics).",
               "- One data set, one model and one training budget: the ranking may change with "
               "any of them. Each grid is small; a better strength may lie outside it.",
