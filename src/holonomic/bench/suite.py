@@ -36,7 +36,6 @@ import json
 import math
 import os
 import platform
-import resource
 import statistics
 import subprocess
 import sys
@@ -240,7 +239,17 @@ def memory_child(name: str, steps: int = 5) -> dict[str, float]:
     state_bytes = sum(t.numel() * t.element_size() for s in opt.state.values() for t in s.values()
                       if torch.is_tensor(t))
     return {"state_bytes_per_param": state_bytes / n,
-            "peak_rss_mib": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+            "peak_rss_mib": _peak_rss_mib()}
+
+
+def _peak_rss_mib() -> float:
+    """Peak resident memory of this process (VmHWM; ``ru_maxrss`` would carry the
+    parent's peak across exec)."""
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
 
 
 def bench_memory() -> dict[str, Any]:
