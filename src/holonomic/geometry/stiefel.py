@@ -63,8 +63,8 @@ def stiefel_shake(
         if err <= tolerance:
             ok = torch.ones((), dtype=torch.bool, device=x.device)
             break
-        if not err < 1e6 or (iterations > 8 and err > previous):
-            break  # diverging
+        if not err < 1e6 or (iterations > 8 and err > 2.0 * previous):
+            break  # diverging: the step moved too far for the normal-space correction
         previous = err
         s = s - 0.5 * _sym(f)
     new = y + x @ s
@@ -194,7 +194,10 @@ class Orthonormal(Constraint):
     def project(self, w: Tensor) -> Tensor:
         x = self._frame(w)
         u, sig, vh = torch.linalg.svd(x, full_matrices=False)
-        if not bool(torch.isfinite(sig).all()) or float(sig.min()) <= float(sig.max()) * 1e3 * torch.finfo(w.dtype).eps:
+        # numerical rank test (as in numpy.linalg.matrix_rank): the polar factor
+        # is unique exactly when the matrix has full rank
+        cutoff = float(sig.max()) * max(x.shape) * torch.finfo(w.dtype).eps
+        if not bool(torch.isfinite(sig).all()) or float(sig.min()) <= cutoff:
             raise ValueError(
                 "Orthonormal: the matrix is rank deficient or not finite, so its nearest "
                 "orthonormal point is not unique; initialise it with a full-rank matrix"
