@@ -68,7 +68,7 @@ def adaptive_thermostat(phase: Phase, *, xi: Tensor, noise_friction: float, temp
     ``xi`` is a 0-d float64 tensor, so no host synchronisation is needed.
     """
     xh = xi * step
-    decay = torch.exp(-xh).to(phase.p.dtype)
+    decay = torch.exp(-xh).to(phase.p.device, phase.p.dtype)
     if temperature == 0.0 or noise_friction == 0.0:
         phase.p = phase.p * decay
         return
@@ -76,7 +76,8 @@ def adaptive_thermostat(phase: Phase, *, xi: Tensor, noise_friction: float, temp
     # (1 - e^{-2 xi h}) / (2 xi), with its limit h at xi = 0
     factor = torch.where(small, torch.full_like(xh, step),
                          -torch.expm1(-2.0 * xh) / (2.0 * torch.where(small, torch.ones_like(xi), xi)))
-    scale = torch.sqrt(2.0 * noise_friction * temperature * factor).to(phase.p.dtype)
+    scale = torch.sqrt(2.0 * noise_friction * temperature * factor).to(phase.p.device,
+                                                                       phase.p.dtype)
     noise = torch.randn(phase.p.shape, generator=generator, dtype=phase.p.dtype,
                         device=phase.p.device)
     phase.p = geometry.tangent(phase.w, phase.p * decay + scale * noise)
