@@ -8,6 +8,8 @@ SHAKE/RATTLE projections at a temperature you choose.
 
 from holonomic.dynamics import IntegrationError, Langevin, OverdampedLangevin, StepInfo
 from holonomic.geometry import Constraint, FixedNorm, Orthonormal, constrain, constraint_of, residuals
+from holonomic.sampling import AdaptiveLangevin
+from holonomic.audit import Audit, repair
 
 __version__ = "0.1.0"
 
@@ -20,7 +22,10 @@ __all__ = [
     "residuals",
     "Langevin",
     "OverdampedLangevin",
+    "AdaptiveLangevin",
     "IntegrationError",
+    "Audit",
+    "repair",
     "StepInfo",
     "__version__",
 ]
