@@ -1,6 +1,6 @@
 """Study configuration: parse and validate a study file (TOML).
 
-A study file has five tables::
+A study file has five tables and an optional sixth::
 
     [study]   name, seeds, selection
     [data]    source, target, train_size, val_fraction, test_fraction, standardize
@@ -8,6 +8,7 @@ A study file has five tables::
     [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
               schedule, projection, dtype
     [arms.NAME]  grid = [...]      NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
+    [audit]   every                (optional, default 50: steps between audit records)
 
 Every error is a :class:`StudyConfigError` (a ``ValueError``) whose message names the key
 and the allowed values, e.g. ``study config: unknown key 'data.trian_size'; allowed keys in
@@ -49,6 +50,10 @@ SCHEDULES = ("constant", "cosine")
 PROJECTIONS = ("rattle", "geodesic")
 DTYPES = ("float32", "float64")
 SELECTION_METRICS = ("val_accuracy", "val_loss")
+#: Default audit interval (optimizer steps between audit records of a run). The audit reads
+#: its state every step (cheap: no host synchronisation) and writes a record every
+#: ``every`` steps plus one at the end of the run.
+DEFAULT_AUDIT_EVERY = 50
 BUILTIN_SOURCES = ("digits", "demo")
 
 _STRENGTH_MEANING = {
@@ -153,6 +158,7 @@ class StudyConfig:
     arms: tuple[ArmConfig, ...]
     selection: str = "val_accuracy"
     base_dir: str = "."
+    audit_every: int = DEFAULT_AUDIT_EVERY
 
     def arm(self, name: str) -> ArmConfig:
         for arm in self.arms:
@@ -193,6 +199,7 @@ class StudyConfig:
             "model": {**asdict(self.model), "widths": list(self.model.widths)},
             "budget": asdict(self.budget),
             "arms": {a.name: list(a.grid) for a in self.arms},
+            "audit": {"every": self.audit_every},
         }
 
 
@@ -445,6 +452,12 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
     return tuple(arms[name] for name in ARM_NAMES if name in arms)
 
 
+def _parse_audit(table: Mapping[str, Any]) -> int:
+    """``[audit] every``: optimizer steps between audit records (>= 1)."""
+    _check_keys(table, ("every",), "audit")
+    return _get_int(table, "every", "audit", DEFAULT_AUDIT_EVERY, minimum=1)
+
+
 def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
                  default_name: str = "study") -> StudyConfig:
     """Validate a parsed TOML document and return a :class:`StudyConfig`.
@@ -452,7 +465,7 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
     Raises:
         StudyConfigError: naming the offending key and the allowed values.
     """
-    _check_keys(doc, ("study", "data", "model", "budget", "arms"), "")
+    _check_keys(doc, ("study", "data", "model", "budget", "arms", "audit"), "")
     base = Path(base_dir)
     study = _get_table(doc, "study")
     _check_keys(study, ("name", "seeds", "selection"), "study")
@@ -465,6 +478,7 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
         budget=_parse_budget(_get_table(doc, "budget")),
         arms=_parse_arms(_get_table(doc, "arms")),
         base_dir=str(base),
+        audit_every=_parse_audit(_get_table(doc, "audit")),
     )
     return config
 

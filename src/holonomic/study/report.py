@@ -119,6 +119,38 @@ def _chosen_values(config: StudyConfig, records: dict[str, dict], sel: Selection
                              metric) for seed in config.seeds])
 
 
+def audit_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, Any]:
+    """Per arm, over all its runs: how many were audited, records, alarms by kind, and the
+    largest constraint residual any audit saw (``None`` when the arm constrains nothing)."""
+    out: dict[str, Any] = {}
+    for arm in config.arms:
+        mine = [r for r in records.values() if r["arm"] == arm.name]
+        audits = [r.get("hooks", {}).get("audit") for r in mine]
+        audited = [a for a in audits if a]
+        kinds: dict[str, int] = {}
+        for a in audited:
+            for place, count in a["alarms"].items():
+                kind = place.split(" ", 1)[0]
+                kinds[kind] = kinds.get(kind, 0) + int(count)
+        residuals = [float(a["residual_max"]) for a in audited if a["residual_max"] is not None]
+        largest = None
+        if residuals:
+            largest = math.nan if any(map(math.isnan, residuals)) else max(residuals)
+        out[arm.name] = {
+            "runs": len(mine),
+            "audited": len(audited),
+            "every": sorted({int(a["every"]) for a in audited}),
+            "records": sum(int(a["records"]) for a in audited),
+            "runs_with_alarms": sum(1 for a in audited if a["alarm_count"]),
+            "alarm_count": sum(int(a["alarm_count"]) for a in audited),
+            "alarm_kinds": dict(sorted(kinds.items())),
+            "residual_max": largest,
+            "first_alarm": next((a["first_alarms"][0] for a in audited if a["first_alarms"]),
+                                None),
+        }
+    return out
+
+
 def build_summary(config: StudyConfig, records: dict[str, dict],
                   chosen: dict[str, Selection]) -> dict[str, Any]:
     """Everything the report states, as plain data (written to summary.json)."""
@@ -168,6 +200,7 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
         "grad_evals_per_run": grad_evals,
         "arms": arms,
         "comparisons_vs_weight_decay": comparisons,
+        "audit": audit_summary(config, records),
     }
 
 
@@ -190,6 +223,39 @@ def _verdict(arm: str, metric: str, comp: dict) -> str:
         return "the data cannot tell them apart (the interval includes 0)"
     direction = "higher" if comp["mean_difference"] > 0 else "lower"
     return f"{arm} {direction} than weight_decay (the interval excludes 0)"
+
+
+def _audit_lines(config: StudyConfig, audit: dict[str, Any]) -> list[str]:
+    every = sorted({e for arm in audit.values() for e in arm["every"]})
+    lines = ["", "## Audit (checks during training)", "",
+             "Every run was audited by `holonomic.Audit` every "
+             f"{', '.join(map(str, every)) or '?'} steps and at its last step (one JSON Lines "
+             "file per run in `audits/`; `holonomic audit audits/FILE.jsonl` summarises one). "
+             "Max residual: the largest relative constraint violation in any audited record of "
+             "the arm's runs (constraint arms only: max-norm clipping and weight decay hold no "
+             "constraint). Alarms: residual above 100 eps of the dtype, momentum not tangent, "
+             "SHAKE at its iteration limit, kinetic temperature outside its 5-sd equilibrium "
+             "interval (checked only at temperature > 0, after burn-in).", "",
+             "| arm | runs audited | records | runs with alarms | alarms by kind | max residual |",
+             "|---|---|---|---|---|---|"]
+    for name, arm in audit.items():
+        kinds = ", ".join(f"{k} {n}" for k, n in arm["alarm_kinds"].items()) or "none"
+        residual = ("-" if arm["residual_max"] is None else
+                    "n/a" if math.isnan(arm["residual_max"]) else f"{arm['residual_max']:.2e}")
+        lines.append(f"| {name} | {arm['audited']}/{arm['runs']} | {arm['records']} | "
+                     f"{arm['runs_with_alarms']} | {kinds} | {residual} |")
+    alarmed = [(name, arm["first_alarm"]) for name, arm in audit.items() if arm["first_alarm"]]
+    if alarmed:
+        lines.append("")
+        lines += [f"- First alarm in {name}: {message}" for name, message in alarmed]
+    lines += ["", "No alarm means the checks passed at the audited steps, not at every step; "
+              "at temperature 0 the kinetic check is skipped, so only the constraints are "
+              "checked."]
+    if config.budget.temperature > 0:
+        lines[-1] += (" Minibatch gradient noise heats the momenta above the target "
+                      "temperature, so kinetic alarms can fire with small batches: they say the "
+                      "run is hotter than asked, not that the constraints failed.")
+    return lines
 
 
 def report_markdown(config: StudyConfig, summary: dict[str, Any], description: str,
@@ -271,6 +337,7 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
                 f"{_num(comp['p_wilcoxon'], 3)} | {_verdict(name, metric, comp)} |")
     if not summary["comparisons_vs_weight_decay"]:
         lines.append("| - | - | - | - | no comparison possible |")
+    lines += _audit_lines(config, summary["audit"])
     min_p = summary["protocol"]["wilcoxon_min_p"]
     lines += ["", "## Caveats (what this does and does not show)", "",
               f"- {n_seeds} seeds. With {n_seeds} pairs the smallest possible two-sided "
@@ -305,7 +372,8 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
     lines += ["## Files", "",
               "- `results.csv`: one row per arm, setting and seed (`chosen` flags the selected "
               "settings); `summary.json`: the numbers in this report; `runs/`: one record per "
-              "run with its per-epoch history."]
+              "run with its per-epoch history and audit summary; `audits/`: one audit per run; "
+              "`study.json`: the study definition the runs were made with."]
     for p in plots:
         name, _, text = p.partition(": ")
         lines.append(f"- `{name}`: {text}")

@@ -7,9 +7,9 @@ initial weights, the minibatch order and the integrator's noise, and the same se
 used by every arm, so comparisons between arms are paired.
 
 Per-step hook point: :func:`default_step_hooks` returns the hooks called after every
-optimizer step with the model and the optimizer (see :class:`StepHook`); extend it (e.g. with
-an audit of the integrator) and each hook's ``summary()`` lands in the run record under
-``"hooks"``.
+optimizer step with the model and the optimizer (see :class:`StepHook`); each hook's
+``summary()`` lands in the run record under ``"hooks"``. By default every run is audited
+(:class:`holonomic.study.audit_hook.RunAudit`: ``DIR/audits/<run key>.jsonl``).
 """
 
 from __future__ import annotations
@@ -79,7 +79,11 @@ def plan_runs(config: StudyConfig) -> list[RunSpec]:
 
 
 class StepHook(Protocol):
-    """Called after every optimizer step; ``summary()`` is stored in the run record."""
+    """Called after every optimizer step; ``summary()`` is stored in the run record.
+
+    A hook may also define ``finish(model, optimizer, steps_done)``: called once when the
+    run ends (finished, failed or diverged), before ``summary()``.
+    """
 
     name: str
 
@@ -90,14 +94,19 @@ class StepHook(Protocol):
         ...
 
 
-def default_step_hooks(config: StudyConfig, spec: RunSpec) -> list[StepHook]:
-    """Hooks attached to every run. None by default.
+def default_step_hooks(config: StudyConfig, spec: RunSpec,
+                       out_dir: str | Path | None = None) -> list[StepHook]:
+    """Hooks attached to every run: an audit (:class:`~holonomic.study.audit_hook.RunAudit`)
+    recording every ``config.audit_every`` steps and at the end, written to
+    ``out_dir/audits/<run key>.jsonl`` (in memory only when ``out_dir`` is None).
 
-    This is the extension point for per-run diagnostics (for instance an audit of the
-    integrator's constraint residuals and kinetic energy): return objects with ``name``,
-    ``on_step(model, optimizer, step)`` and ``summary() -> dict``.
+    This is the extension point for per-run diagnostics: return objects with ``name``,
+    ``on_step(model, optimizer, step)``, ``summary() -> dict`` and optionally ``finish``.
     """
-    return []
+    from holonomic.study.audit_hook import RunAudit
+
+    path = None if out_dir is None else storage.audit_path(out_dir, spec.key)
+    return [RunAudit(config.audit_every, path, relative_to=out_dir)]
 
 
 def make_optimizer(params: Iterable[torch.nn.Parameter], config: StudyConfig,
@@ -137,7 +146,8 @@ def _tensors(split: Split, dtype: torch.dtype) -> dict[str, tuple[torch.Tensor, 
 
 def train_run(config: StudyConfig, spec: RunSpec,
               hooks: Sequence[StepHook] | None = None,
-              return_model: bool = False) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
+              return_model: bool = False, out_dir: str | Path | None = None,
+              ) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
     """Train one run and return its record (metrics, per-epoch history, settings).
 
     Loop: for each epoch, for each minibatch of :func:`epoch_order`:
@@ -145,6 +155,8 @@ def train_run(config: StudyConfig, spec: RunSpec,
     hooks``; after each epoch, accuracy / loss on train, validation and test, hidden weight
     norms and the constraint residual are logged. Test metrics are computed for every run
     but the study never uses them to choose settings.
+
+    ``hooks`` default to :func:`default_step_hooks` (``out_dir`` places their files).
 
     Torch runs single-threaded inside (restored afterwards): the models are small, so
     threads only add overhead, and results do not depend on the thread count.
@@ -155,13 +167,14 @@ def train_run(config: StudyConfig, spec: RunSpec,
     threads = torch.get_num_threads()
     torch.set_num_threads(1)
     try:
-        return _train_run(config, spec, hooks, return_model)
+        return _train_run(config, spec, hooks, return_model, out_dir)
     finally:
         torch.set_num_threads(threads)
 
 
 def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | None,
-               return_model: bool) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
+               return_model: bool, out_dir: str | Path | None,
+               ) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
     dtype = _DTYPES[config.budget.dtype]
     split = make_split(load_dataset(config), config.data, spec.seed)
     data = _tensors(split, dtype)
@@ -176,7 +189,7 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
     scheduler = None
     if config.budget.schedule == "cosine":
         scheduler = torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total_steps)
-    hooks = list(default_step_hooks(config, spec) if hooks is None else hooks)
+    hooks = list(default_step_hooks(config, spec, out_dir) if hooks is None else hooks)
 
     history: dict[str, list[float]] = {k: [] for k in (
         "epoch", "train_accuracy", "val_accuracy", "test_accuracy", "train_loss", "val_loss",
@@ -215,6 +228,9 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         history["mean_row_norm_hidden"].append(weight_norms(model)["mean_row_norm_hidden"])
         history["constraint_residual"].append(constraint_residual(model, setup))
 
+    for hook in hooks:
+        if hasattr(hook, "finish"):
+            hook.finish(model, optimizer, step)
     metrics = _final_metrics(model, data, setup, status)
     record = {
         "key": spec.key,
@@ -266,8 +282,8 @@ def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str) -
 
 
 def _execute(config: StudyConfig, spec: RunSpec, out_dir: str) -> str:
-    """Train one run and store its record."""
-    storage.write_record(out_dir, train_run(config, spec))
+    """Train one run and store its record (its audit file is in place before)."""
+    storage.write_record(out_dir, train_run(config, spec, out_dir=out_dir))
     return spec.key
 
 
@@ -315,6 +331,7 @@ def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
         raise ValueError(f"workers must be >= 1, got {workers}")
     out_dir = str(out_dir)
     storage.runs_dir(out_dir).mkdir(parents=True, exist_ok=True)
+    storage.audits_dir(out_dir).mkdir(parents=True, exist_ok=True)
     storage.remove_stale_temporaries(out_dir)
     specs = plan_runs(config) if specs is None else list(specs)
     keys = [s.key for s in specs]
