@@ -12,8 +12,14 @@ _DESCRIPTION = """\
 Train one model per (arm, strength, seed) with holonomic.Langevin under one shared budget,
 choose each arm's strength on the validation split, and compare the chosen settings against
 weight decay on the test split, paired by seed (95% t interval, Wilcoxon signed-rank test).
-Writes results.csv, summary.json, report.md and PNG plots into --out. Reruns resume: runs
-already stored under OUT/runs are skipped.
+Writes results.csv, summary.json, report.md and PNG plots into --out, and one audit per run
+under OUT/audits. Reruns resume: runs already stored under OUT/runs are skipped.
+
+On a cluster: run `--shard i/n` on each machine against a shared --out (i is 0-based,
+0 <= i < n; run number k of the study's canonical run list belongs to shard k mod n), then
+`--report-only` once all shards are done. Shards write only their own runs; --report-only
+refuses, with exit status 1, while any run is missing, and names the missing runs.
+See docs/cluster.md.
 """
 
 
@@ -30,6 +36,13 @@ def register(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
                         help="output directory (created; reused to resume)")
     parser.add_argument("--workers", type=int, default=1, metavar="N",
                         help="parallel worker processes (default 1)")
+    parser.add_argument("--shard", metavar="I/N",
+                        help="run only shard I of N (0-based: 0 <= I < N), e.g. "
+                             "$SLURM_ARRAY_TASK_ID/$SLURM_ARRAY_TASK_COUNT; writes no report")
+    parser.add_argument("--report-only", action="store_true",
+                        help="train nothing: merge the finished runs in --out into the report "
+                             "(exit status 1, naming them, if runs are missing)")
+    parser.add_argument("--no-plots", action="store_true", help="write no PNG plots")
     parser.add_argument("--quiet", action="store_true",
                         help="no progress bar; print only the output location (for logs)")
     parser.set_defaults(func=_main)
@@ -37,28 +50,57 @@ def register(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
 
 
 def _main(args: argparse.Namespace) -> int:
-    from holonomic.study import StudyConfigError, demo_config, load_config, run_study
+    from holonomic.study import (
+        IncompleteStudyError,
+        StudyConfigError,
+        demo_config,
+        load_config,
+        report_study,
+        run_study,
+    )
+    from holonomic.study.sharding import ShardError, parse_shard
 
-    def error(message: str) -> int:
+    def error(message: str, status: int = 2) -> int:
         print(f"holonomic study: error: {message}", file=sys.stderr)
-        return 2
+        return status
 
     if args.demo == (args.config is not None):
         return error("give either a study file or --demo (exactly one)")
     if args.workers < 1:
         return error(f"--workers must be >= 1, got {args.workers}")
+    if args.report_only and args.shard is not None:
+        return error("--report-only merges every shard's runs; drop --shard")
+    shard = None
+    if args.shard is not None:
+        try:
+            shard = parse_shard(args.shard)
+        except ShardError as exc:
+            return error(str(exc))
     started = time.perf_counter()
     try:
         config = demo_config() if args.demo else load_config(args.config)
-        summary = run_study(config, args.out, workers=args.workers, progress=not args.quiet)
+        if args.report_only:
+            summary = report_study(config, args.out, plots=not args.no_plots)
+        else:
+            summary = run_study(config, args.out, workers=args.workers,
+                                progress=not args.quiet, plots=not args.no_plots, shard=shard)
     except StudyConfigError as exc:
         return error(str(exc))
+    except IncompleteStudyError as exc:
+        return error(f"no report written: {exc}", status=1)
     except KeyboardInterrupt:
         print("\nholonomic study: interrupted; finished runs are saved under "
               f"{args.out}/runs; rerun the same command to resume", file=sys.stderr)
         return 130
     elapsed = time.perf_counter() - started
     runs = summary["runs"]
-    print(f"study {config.name}: {runs['ok']}/{runs['total']} runs finished in {elapsed:.1f} s; "
-          f"report: {args.out}/report.md")
+    if shard is not None:
+        print(f"study {config.name}, shard {shard[0]}/{shard[1]}: {runs['ok']}/{runs['total']} "
+              f"runs finished in {elapsed:.1f} s (stored under {args.out}/runs); when every "
+              f"shard is done: holonomic study ... --out {args.out} --report-only")
+        return 0
+    alarms = sum(arm["runs_with_alarms"] for arm in summary["audit"].values())
+    verb = "merged" if args.report_only else "finished"
+    print(f"study {config.name}: {runs['ok']}/{runs['total']} runs {verb} in {elapsed:.1f} s; "
+          f"{alarms} with audit alarms; report: {args.out}/report.md")
     return 0
