@@ -198,3 +198,16 @@ def test_every_run_has_an_audit_and_the_report_shows_it(study_file, reference):
         cells = [c.strip() for c in row.strip("|").split("|")]
         assert cells[2] == str(n * len(steps))  # records
         assert cells[5] == (f"{largest[arm]:.2e}" if arm in largest else "-")
+
+
+@pytest.mark.parametrize("table,match", [
+    ({"every": 0}, r"'audit.every' must be >= 1, got 0"),
+    ({"every": 2.5}, r"'audit.every' must be an integer"),
+    ({"evry": 5}, r"unknown key 'audit.evry'; allowed keys in \[audit\]: every"),
+])
+def test_audit_table_is_validated(tiny_doc, table, match):
+    from holonomic.study import StudyConfigError, parse_config
+
+    assert parse_config(tiny_doc).audit_every == 50  # default when [audit] is absent
+    with pytest.raises(StudyConfigError, match=match):
+        parse_config({**tiny_doc, "audit": table})

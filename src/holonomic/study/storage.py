@@ -52,15 +52,20 @@ def temporary_path(path: str | Path, keep_suffix: bool = False) -> Path:
     return path.parent / f".{path.name}.{tag}.tmp"
 
 
+def _write_synced(handle, text: str) -> None:
+    """Write ``text`` to the open text file ``handle``, flush it to disk, close it."""
+    with handle:
+        handle.write(text)
+        handle.flush()
+        os.fsync(handle.fileno())
+
+
 def atomic_write_text(path: str | Path, text: str) -> None:
     """Write ``text`` to ``path`` atomically (temporary file, fsync, ``os.replace``)."""
     path = Path(path)
     tmp = temporary_path(path)
     try:
-        with open(tmp, "w", encoding="utf-8", newline="") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
+        _write_synced(open(tmp, "w", encoding="utf-8", newline=""), text)
         os.replace(tmp, path)
     finally:
         if tmp.exists():
@@ -223,10 +228,7 @@ def _create_exclusive(path: Path, text: str) -> bool:
     """
     tmp = temporary_path(path)
     try:
-        with open(tmp, "w", encoding="utf-8", newline="") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
+        _write_synced(open(tmp, "w", encoding="utf-8", newline=""), text)
         try:
             os.link(tmp, path)
             return True
@@ -237,10 +239,7 @@ def _create_exclusive(path: Path, text: str) -> bool:
                 fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
                 return False
-            with os.fdopen(fd, "w", encoding="utf-8", newline="") as handle:
-                handle.write(text)
-                handle.flush()
-                os.fsync(handle.fileno())
+            _write_synced(os.fdopen(fd, "w", encoding="utf-8", newline=""), text)
             return True
     finally:
         tmp.unlink(missing_ok=True)
