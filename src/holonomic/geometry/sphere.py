@@ -153,7 +153,9 @@ class FixedNorm(Constraint):
         a = self._vectors(w)
         b = self._vectors(v)
         dot = (a * b).sum(dim=1).abs()
-        scale = a.norm(dim=1) * b.norm(dim=1)
+        # relative to the largest row of v: a row of v that is pure roundoff
+        # (a dead unit) must not read as a large violation
+        scale = a.norm(dim=1) * b.norm(dim=1).max()
         tiny = torch.finfo(w.dtype).tiny
         return (dot / scale.clamp_min(tiny)).max()
 
