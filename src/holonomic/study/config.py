@@ -8,6 +8,8 @@ A study file has five tables and an optional sixth::
     [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
               schedule, projection, dtype
     [arms.NAME]  grid = [...]      NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
+    [arms.NAME.ensemble]           (optional) temperature, samples, every, burn_in, sampler,
+                                   step, friction: a sampling phase after training
     [audit]   every                (optional, default 50: steps between audit records)
 
 Every error is a :class:`StudyConfigError` (a ``ValueError``) whose message names the key
@@ -34,6 +36,7 @@ __all__ = [
     "ArmConfig",
     "BudgetConfig",
     "DataConfig",
+    "EnsembleConfig",
     "ModelConfig",
     "StudyConfig",
     "StudyConfigError",
@@ -55,6 +58,9 @@ SELECTION_METRICS = ("val_accuracy", "val_loss")
 #: ``every`` steps plus one at the end of the run.
 DEFAULT_AUDIT_EVERY = 50
 BUILTIN_SOURCES = ("digits", "demo")
+SAMPLERS = ("adaptive", "langevin")
+#: Fewest samples of an ensemble phase: the mixing diagnostics need 4 draws per chain.
+MIN_ENSEMBLE_SAMPLES = 4
 
 _STRENGTH_MEANING = {
     "none": "no strength (one setting)",
@@ -135,11 +141,57 @@ class BudgetConfig:
 
 
 @dataclass(frozen=True)
+class EnsembleConfig:
+    r"""Sampling phase after training (``[arms.NAME.ensemble]``), run for every run of the arm.
+
+    From the trained weights the sampler draws from the tempered posterior
+
+    .. math::  \pi(W) \propto \exp\bigl(-N\,[\bar L(W) + \tfrac{\lambda}{2}|W|^2] / T\bigr)
+
+    on the arm's constraint set, with :math:`\bar L` the mean training cross-entropy,
+    :math:`N` the training-set size (``dataset_size = N``), :math:`\lambda` the arm's weight
+    decay (0 except for the weight-decay arm) and :math:`T` = ``temperature``: ``T = 1`` is
+    the Bayesian posterior of that model and prior, ``T < 1`` a cold posterior. Mini-batches
+    as in training. After ``burn_in`` steps a sample is taken every ``every`` steps until
+    ``samples`` are collected: ``burn_in + samples * every`` steps in all.
+
+    ``sampler``: ``"adaptive"`` (``holonomic.AdaptiveLangevin``: the friction adapts so the
+    kinetic temperature is right despite mini-batch gradient noise) or ``"langevin"``
+    (``holonomic.Langevin``: mini-batch noise heats it above ``T``). ``step`` and
+    ``friction`` are in the sampler's units (force ``N * grad + N * lambda * W``); by default
+    they follow the budget's base step and friction rescaled to that force,
+    ``h / sqrt(N)`` and ``gamma * sqrt(N)`` (SGD view: ``lr / N``, same momentum).
+    ``burn_in`` defaults to one epoch of steps (``None`` here).
+    """
+
+    temperature: float
+    samples: int
+    every: int = 1
+    burn_in: int | None = None
+    sampler: str = "adaptive"
+    step: float | None = None
+    friction: float | None = None
+
+    def resolved(self, budget: "BudgetConfig", n_train: int) -> dict[str, Any]:
+        """Step, friction and burn-in actually used for a training set of ``n_train`` rows."""
+        h, gamma = budget.step_friction()
+        scale = math.sqrt(n_train)
+        steps_per_epoch = math.ceil(n_train / budget.batch_size)
+        return {
+            "step": h / scale if self.step is None else self.step,
+            "friction": gamma * scale if self.friction is None else self.friction,
+            "burn_in": steps_per_epoch if self.burn_in is None else self.burn_in,
+        }
+
+
+@dataclass(frozen=True)
 class ArmConfig:
-    """One arm: a regulariser and its grid of strengths (``(0.0,)`` for ``none``)."""
+    """One arm: a regulariser and its grid of strengths (``(0.0,)`` for ``none``), and an
+    optional sampling phase after training (:class:`EnsembleConfig`)."""
 
     name: str
     grid: tuple[float, ...]
+    ensemble: EnsembleConfig | None = None
 
     @property
     def meaning(self) -> str:
@@ -189,9 +241,14 @@ class StudyConfig:
         text = json.dumps(payload, sort_keys=True, default=str)
         return hashlib.sha256(text.encode()).hexdigest()[:16]
 
+    def ensemble_settings(self, arm: str) -> dict[str, Any] | None:
+        """The arm's ensemble settings as plain data (stored in each run record), or None."""
+        ensemble = self.arm(arm).ensemble
+        return None if ensemble is None else asdict(ensemble)
+
     def to_dict(self) -> dict[str, Any]:
         """Plain-data view (for summary.json)."""
-        return {
+        out = {
             "name": self.name,
             "seeds": list(self.seeds),
             "selection": self.selection,
@@ -201,6 +258,10 @@ class StudyConfig:
             "arms": {a.name: list(a.grid) for a in self.arms},
             "audit": {"every": self.audit_every},
         }
+        ensembles = {a.name: asdict(a.ensemble) for a in self.arms if a.ensemble is not None}
+        if ensembles:  # absent otherwise: definitions of studies without ensembles unchanged
+            out["ensembles"] = ensembles
+        return out
 
 
 # ---------------------------------------------------------------------------------------
@@ -414,11 +475,14 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
             raise _fail(f"unknown arm 'arms.{name}'; allowed arms: {', '.join(ARM_NAMES)}")
         if not isinstance(body, Mapping):
             raise _fail(f"'arms.{name}' must be a table ([arms.{name}]), got {body!r}")
+        ensemble = None
+        if "ensemble" in body:
+            ensemble = _parse_ensemble(body["ensemble"], f"arms.{name}.ensemble")
         if name == "none":
-            _check_keys(body, (), "arms.none")
-            arms[name] = ArmConfig(name, (0.0,))
+            _check_keys(body, ("ensemble",), "arms.none")
+            arms[name] = ArmConfig(name, (0.0,), ensemble)
             continue
-        _check_keys(body, ("grid",), f"arms.{name}")
+        _check_keys(body, ("grid", "ensemble"), f"arms.{name}")
         if "grid" not in body:
             raise _fail(f"'arms.{name}.grid' is missing; give a list of strengths "
                         f"({_STRENGTH_MEANING[name]})")
@@ -440,7 +504,7 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
             values.append(value)
         if len(set(values)) != len(values):
             raise _fail(f"'arms.{name}.grid' has repeated values, got {grid!r}")
-        arms[name] = ArmConfig(name, tuple(values))
+        arms[name] = ArmConfig(name, tuple(values), ensemble)
     if BASELINE_ARM not in arms:
         raise _fail(f"'arms.{BASELINE_ARM}' is missing: every arm is compared against weight "
                     f"decay; add [arms.{BASELINE_ARM}] with a grid")
@@ -450,6 +514,27 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
         raise _fail(f"every tuned arm needs the same number of grid points (a fair search); "
                     f"got {sizes}")
     return tuple(arms[name] for name in ARM_NAMES if name in arms)
+
+
+def _parse_ensemble(table: Any, where: str) -> EnsembleConfig:
+    """``[arms.NAME.ensemble]``: see :class:`EnsembleConfig`."""
+    if not isinstance(table, Mapping):
+        raise _fail(f"'{where}' must be a table ([{where}]), got {table!r}")
+    _check_keys(table, ("temperature", "samples", "every", "burn_in", "sampler", "step",
+                        "friction"), where)
+    for key in ("temperature", "samples"):
+        if key not in table:
+            raise _fail(f"'{where}.{key}' is missing; an ensemble needs temperature (> 0; "
+                        f"1 = the Bayesian posterior) and samples (>= {MIN_ENSEMBLE_SAMPLES})")
+    return EnsembleConfig(
+        temperature=_get_float(table, "temperature", where, None, 0.0, None, low_open=True),
+        samples=_get_int(table, "samples", where, None, minimum=MIN_ENSEMBLE_SAMPLES),
+        every=_get_int(table, "every", where, 1, minimum=1),
+        burn_in=_get_int(table, "burn_in", where, None, minimum=0),
+        sampler=_get_str(table, "sampler", where, "adaptive", SAMPLERS),
+        step=_get_float(table, "step", where, None, 0.0, None, low_open=True),
+        friction=_get_float(table, "friction", where, None, 0.0, None, low_open=True),
+    )
 
 
 def _parse_audit(table: Mapping[str, Any]) -> int:
@@ -480,6 +565,13 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
         base_dir=str(base),
         audit_every=_parse_audit(_get_table(doc, "audit")),
     )
+    for arm in config.arms:
+        if (arm.ensemble is not None and arm.ensemble.sampler == "adaptive"
+                and arm.ensemble.friction is None
+                and not math.isfinite(config.budget.step_friction()[1])):
+            raise _fail(f"'arms.{arm.name}.ensemble.friction' is needed: the budget's momentum "
+                        "0 gives infinite friction, which the adaptive sampler cannot start "
+                        "from; give a finite friction or sampler = \"langevin\"")
     return config
 
 

@@ -21,14 +21,19 @@ from scipy import stats as sps
 
 from holonomic.study import storage
 from holonomic.study.config import BASELINE_ARM, StudyConfig
+from holonomic.study.ensemble import ENSEMBLE_METRICS, ensemble_lines, ensemble_summary
 from holonomic.study.runner import _METRIC_NAMES, RunSpec, plan_runs
 from holonomic.study.stats import paired_comparison, wilcoxon_min_p
 
-__all__ = ["CSV_COLUMNS", "Selection", "build_summary", "results_table", "select_settings",
+__all__ = ["CSV_COLUMNS", "ENSEMBLE_COLUMNS", "Selection", "csv_columns", "build_summary", "results_table", "select_settings",
            "write_outputs"]
 
 CSV_COLUMNS = ("arm", "setting_index", "strength", "seed", "chosen", "status", "n_train",
                "grad_evals") + _METRIC_NAMES
+#: Extra columns when an arm has an ensemble phase: test metrics of the trained network
+#: and of the ensemble (holonomic.sampling.classification_metrics, 15 ECE bins).
+ENSEMBLE_COLUMNS = ("ensemble_status",) + tuple(
+    f"{who}_test_{m}" for who in ("single", "ensemble") for m in ENSEMBLE_METRICS)
 #: Metrics compared across arms (paired by seed) in the report.
 COMPARED = ("test_accuracy", "gap_accuracy", "gap_loss")
 #: Per-arm metrics summarised for the chosen settings.
@@ -79,12 +84,31 @@ def _fmt(value: Any) -> str:
     return str(value)
 
 
+def csv_columns(config: StudyConfig) -> tuple[str, ...]:
+    """Columns of ``results.csv``: :data:`CSV_COLUMNS`, plus :data:`ENSEMBLE_COLUMNS` when
+    an arm has an ensemble phase (empty for the runs of arms without one)."""
+    if any(arm.ensemble is not None for arm in config.arms):
+        return CSV_COLUMNS + ENSEMBLE_COLUMNS
+    return CSV_COLUMNS
+
+
+def _ensemble_row(record: dict) -> dict[str, Any]:
+    phase = record.get("ensemble")
+    if phase is None:
+        return {c: "" for c in ENSEMBLE_COLUMNS}
+    row: dict[str, Any] = {"ensemble_status": phase["status"]}
+    for who in ("single", "ensemble"):
+        row.update({f"{who}_test_{m}": float(phase[who]["test"][m]) for m in ENSEMBLE_METRICS})
+    return row
+
+
 def results_table(config: StudyConfig, records: dict[str, dict],
                   chosen: dict[str, Selection]) -> str:
     """``results.csv`` text: one row per arm, setting and seed, in plan order."""
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(CSV_COLUMNS)
+    columns = csv_columns(config)
+    writer.writerow(columns)
     for spec in plan_runs(config):
         record = records[spec.key]
         row = {
@@ -94,7 +118,9 @@ def results_table(config: StudyConfig, records: dict[str, dict],
             "grad_evals": record["grad_evals"],
         }
         row.update({k: float(record["metrics"][k]) for k in _METRIC_NAMES})
-        writer.writerow([_fmt(row[c]) for c in CSV_COLUMNS])
+        if len(columns) > len(CSV_COLUMNS):
+            row.update(_ensemble_row(record))
+        writer.writerow([_fmt(row[c]) for c in columns])
     return buffer.getvalue()
 
 
@@ -201,6 +227,7 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
         "arms": arms,
         "comparisons_vs_weight_decay": comparisons,
         "audit": audit_summary(config, records),
+        "ensembles": ensemble_summary(config, records, chosen),
     }
 
 
@@ -337,6 +364,7 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
                 f"{_num(comp['p_wilcoxon'], 3)} | {_verdict(name, metric, comp)} |")
     if not summary["comparisons_vs_weight_decay"]:
         lines.append("| - | - | - | - | no comparison possible |")
+    lines += ensemble_lines(summary["ensembles"])
     lines += _audit_lines(config, summary["audit"])
     min_p = summary["protocol"]["wilcoxon_min_p"]
     lines += ["", "## Caveats (what this does and does not show)", "",

@@ -42,6 +42,7 @@ __all__ = [
     "default_step_hooks",
     "epoch_order",
     "make_optimizer",
+    "minibatch_step",
     "plan_runs",
     "run_all",
     "train_run",
@@ -127,6 +128,21 @@ def epoch_order(n: int, seed: int, epoch: int) -> torch.Tensor:
     return torch.randperm(n, generator=generator)
 
 
+def minibatch_step(model: nn.Module, optimizer: torch.optim.Optimizer, setup: ArmSetup,
+                   x: torch.Tensor, y: torch.Tensor, idx: torch.Tensor, where: str) -> None:
+    """One step on the mini-batch ``idx``: ``zero_grad; mean cross-entropy; backward;
+    optimizer.step(); arm after-step``. Raises ``FloatingPointError`` naming ``where`` on a
+    non-finite loss (``holonomic.IntegrationError`` passes through)."""
+    optimizer.zero_grad(set_to_none=True)
+    loss = F.cross_entropy(model(x[idx]), y[idx])
+    if not torch.isfinite(loss):
+        raise FloatingPointError(f"non-finite loss at {where}")
+    loss.backward()
+    optimizer.step()
+    if setup.after_step is not None:
+        setup.after_step()
+
+
 def _evaluate(model: nn.Module, x: torch.Tensor, y: torch.Tensor) -> dict[str, Any]:
     with torch.no_grad():
         logits = model(x)
@@ -157,6 +173,12 @@ def train_run(config: StudyConfig, spec: RunSpec,
     but the study never uses them to choose settings.
 
     ``hooks`` default to :func:`default_step_hooks` (``out_dir`` places their files).
+
+    If the arm has an ensemble phase (``[arms.NAME.ensemble]``), the trained network then
+    continues as a sampler (:func:`holonomic.study.ensemble.run_ensemble_phase`); its
+    results are under ``"ensemble"`` (None for arms without one) and the metrics under
+    ``"metrics"`` stay those of the trained network. With ``return_model`` the model is
+    returned as it is at the end (after sampling, when there is an ensemble phase).
 
     Torch runs single-threaded inside (restored afterwards): the models are small, so
     threads only add overhead, and results do not depend on the thread count.
@@ -200,15 +222,8 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         order = epoch_order(n_train, spec.seed, epoch)
         try:
             for start in range(0, n_train, batch):
-                idx = order[start:start + batch]
-                optimizer.zero_grad(set_to_none=True)
-                loss = F.cross_entropy(model(x_train[idx]), y_train[idx])
-                if not torch.isfinite(loss):
-                    raise FloatingPointError(f"non-finite loss at step {step}")
-                loss.backward()
-                optimizer.step()
-                if setup.after_step is not None:
-                    setup.after_step()
+                minibatch_step(model, optimizer, setup, x_train, y_train,
+                               order[start:start + batch], f"step {step}")
                 step += 1
                 for hook in hooks:
                     hook.on_step(model, optimizer, step)
@@ -232,6 +247,16 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         if hasattr(hook, "finish"):
             hook.finish(model, optimizer, step)
     metrics = _final_metrics(model, data, setup, status)
+    training_wall_s = time.perf_counter() - started
+    ensemble_config = config.arm(spec.arm).ensemble
+    ensemble = None
+    if ensemble_config is not None:
+        from holonomic.study.ensemble import run_ensemble_phase, skipped_phase
+
+        ensemble = (run_ensemble_phase(config, ensemble_config, model, setup, data, spec.seed,
+                                       first_epoch=config.budget.epochs)
+                    if status == "ok" else skipped_phase(config, ensemble_config, n_train,
+                                                         f"training {status}"))
     record = {
         "key": spec.key,
         "arm": spec.arm,
@@ -248,6 +273,9 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         "metrics": metrics,
         "history": history,
         "hooks": {hook.name: hook.summary() for hook in hooks},
+        "ensemble_settings": config.ensemble_settings(spec.arm),
+        "ensemble": ensemble,
+        "training_wall_s": training_wall_s,
         "wall_s": time.perf_counter() - started,
     }
     return (record, model) if return_model else record
@@ -303,7 +331,8 @@ def _context():
 
 
 def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str | Path) -> None:
-    """Refuse to mix runs of a different study (data, model or budget changed)."""
+    """Refuse to mix runs of a different study (data, model, budget or an arm's ensemble
+    settings changed)."""
     expected = config.training_fingerprint()
     for key, record in records.items():
         spec = RunSpec(record.get("arm", "?"), 0, float(record.get("strength", "nan")),
@@ -316,6 +345,13 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
                 f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "
                 "data, model or budget settings; use a new --out directory or delete "
                 f"{str(storage.runs_dir(out_dir))!r}")
+        wanted = config.ensemble_settings(spec.arm)
+        if record.get("ensemble_settings") != wanted:
+            raise StudyConfigError(
+                f"study config: {str(out_dir)!r} holds run {key!r} made with ensemble settings "
+                f"{record.get('ensemble_settings')}, the study asks for {wanted} "
+                f"([arms.{spec.arm}.ensemble]); use a new --out directory or delete that arm's "
+                f"runs ({spec.arm}-*.json) from {str(storage.runs_dir(out_dir))!r}")
 
 
 def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
