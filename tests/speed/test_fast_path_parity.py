@@ -66,6 +66,12 @@ def test_fast_path_matches_reference(temperature, friction):
     data = _data()
     _run(fast_net, fast, 40, data)
     _run(ref_net, ref, 40, data)
+    assert_same_run(fast_net, fast, ref_net, ref)
+
+
+def assert_same_run(fast_net, fast, ref_net, ref, same_iterations=lambda a, b: a == b):
+    """Weights, momenta, generator states and step info of the fast and the
+    reference run agree to float64 roundoff."""
     for a, b in zip(fast_net.parameters(), ref_net.parameters()):
         assert torch.allclose(a, b, rtol=0, atol=TOL)
         assert torch.allclose(fast.state[a]["momentum"], ref.state[b]["momentum"], rtol=0, atol=TOL)
@@ -73,8 +79,8 @@ def test_fast_path_matches_reference(temperature, friction):
     assert all(torch.equal(fast._generators[k].get_state(), ref._generators[k].get_state())
                for k in ref._generators)
     for a, b in zip(fast.last_info.parameters, ref.last_info.parameters):
-        assert (a.label, a.group, a.index, a.projection_iterations, a.tangent_dof) == \
-               (b.label, b.group, b.index, b.projection_iterations, b.tangent_dof)
+        assert (a.label, a.group, a.index, a.tangent_dof) == (b.label, b.group, b.index, b.tangent_dof)
+        assert same_iterations(a.projection_iterations, b.projection_iterations)
         assert abs(float(a.kinetic_energy) - float(b.kinetic_energy)) <= TOL * max(1.0, float(b.kinetic_energy))
     assert max(hn.residuals(fast_net).values()) < 1e-13
 

@@ -197,6 +197,15 @@ def bench_orthonormal(rounds: int, widths: tuple[int, ...], steps_check: int = 2
             ours_step()
         row["our_residual"] = hn.residuals(ours_net)["2.weight"]
         out[f"orthonormal_{width}"] = row
+        if width == widths[0]:
+            ref_net = _square_net(width, 0)
+            with torch.no_grad():
+                nn.init.orthogonal_(ref_net[2].weight)
+            hn.constrain(ref_net[2], weight=hn.Orthonormal())
+            ref = hn.Langevin.from_sgd(ref_net.parameters(), lr=LR, momentum=MOMENTUM)
+            ref._reference = True
+            out["fast_vs_reference_orthonormal"] = compare(ours_step, _train_step(ref_net, ref, x, y),
+                                                           rounds=rounds, warmup=1)
     return out
 
 
@@ -261,8 +270,13 @@ def bench_memory() -> dict[str, Any]:
     return {"memory": out}
 
 
-def run_suite(quick: bool = False, threads: int | None = None) -> dict[str, Any]:
-    """Run all benchmarks and return the results (plain data)."""
+BENCHMARKS = ("steps", "training", "orthonormal", "scaling", "memory")
+
+
+def run_suite(quick: bool = False, threads: int | None = None,
+              only: tuple[str, ...] = BENCHMARKS) -> dict[str, Any]:
+    """Run the benchmarks named in ``only`` (default all) and return the
+    results (plain data)."""
     if threads:
         torch.set_num_threads(threads)
     rounds = 5 if quick else 15
@@ -274,11 +288,16 @@ def run_suite(quick: bool = False, threads: int | None = None) -> dict[str, Any]
         "threads": torch.get_num_threads(),
         "dtype": "float32",
     }
-    result.update(bench_steps(rounds))
-    result.update(bench_training(rounds))
-    result.update(bench_orthonormal(max(3, rounds // 3), (512,) if quick else (512, 1024)))
-    result.update(bench_scaling(max(3, rounds // 3), (0.25, 1.0, 2.0, 4.0, 8.0) if not quick else (0.25, 1.0)))
-    result.update(bench_memory())
+    if "steps" in only:
+        result.update(bench_steps(rounds))
+    if "training" in only:
+        result.update(bench_training(rounds))
+    if "orthonormal" in only:
+        result.update(bench_orthonormal(max(3, rounds // 3), (512,) if quick else (512, 1024)))
+    if "scaling" in only:
+        result.update(bench_scaling(max(3, rounds // 3), (0.25, 1.0, 2.0, 4.0, 8.0) if not quick else (0.25, 1.0)))
+    if "memory" in only:
+        result.update(bench_memory())
     return result
 
 
@@ -289,24 +308,31 @@ def _fmt(c: dict[str, float]) -> str:
 def format_table(r: dict[str, Any]) -> str:
     lines = [f"holonomic benchmark  {r['date']}  torch {r['torch']}  threads {r['threads']}  "
              f"cpus {r['cpu_count']}  {r['dtype']} CPU",
-             "ratio = median over interleaved rounds [quartiles]; target in brackets",
-             f"1 T=0 step vs SGD(momentum, foreach)            [<=1.5]   {_fmt(r['t0_vs_sgd'])}",
-             f"2 T>0 step vs unconstrained Langevin (same noise) [<=1.2] {_fmt(r['hot_vs_plain_langevin'])}",
-             f"3 training step vs SGD, batch 128               [<=1.10]  {_fmt(r['train_step_vs_sgd'])}"]
+             "ratio = median over interleaved rounds [quartiles]; target in brackets"]
+    if "t0_vs_sgd" in r:
+        lines += [f"1 T=0 step vs SGD(momentum, foreach)            [<=1.5]   {_fmt(r['t0_vs_sgd'])}",
+                  f"2 T>0 step vs unconstrained Langevin (same noise) [<=1.2] {_fmt(r['hot_vs_plain_langevin'])}"]
+    if "train_step_vs_sgd" in r:
+        lines.append(f"3 training step vs SGD, batch 128               [<=1.10]  {_fmt(r['train_step_vs_sgd'])}")
     for key, row in r.items():
         if key.startswith("orthonormal_"):
             for kind in ("cayley", "matrix_exp"):
                 lines.append(f"4 {key} training step vs torch {kind:<10} [<=0.5] {_fmt(row[kind])}  "
                              f"residual ours {row['our_residual']:.1e} theirs {row[kind]['their_residual']:.1e}")
-    s = r["scaling"]
-    lines.append(f"5 step time ~ params^k, {s['params'][0]/1e6:.2f}M..{s['params'][-1]/1e6:.2f}M  [<=1.05]  "
-                 f"k = {s['exponent']:.3f}  (ms: {', '.join(f'{t:.1f}' for t in s['step_ms'])})")
-    m = r["memory"]
-    lines.append(f"6 state bytes/param: holonomic {m['holonomic']['state_bytes_per_param']:.2f}, "
-                 f"SGD {m['sgd']['state_bytes_per_param']:.2f};  peak RSS of a 5-step training run "
-                 f"{m['holonomic']['peak_rss_mib']:.0f} vs {m['sgd']['peak_rss_mib']:.0f} MiB "
-                 f"(ratio {m['holonomic']['peak_rss_mib'] / m['sgd']['peak_rss_mib']:.2f})")
-    lines.append(f"  fast path vs plain reference path (T=0 step): {_fmt(r['t0_fast_vs_reference'])}")
+    if "scaling" in r:
+        s = r["scaling"]
+        lines.append(f"5 step time ~ params^k, {s['params'][0]/1e6:.2f}M..{s['params'][-1]/1e6:.2f}M  [<=1.05]  "
+                     f"k = {s['exponent']:.3f}  (ms: {', '.join(f'{t:.1f}' for t in s['step_ms'])})")
+    if "memory" in r:
+        m = r["memory"]
+        lines.append(f"6 state bytes/param: holonomic {m['holonomic']['state_bytes_per_param']:.2f}, "
+                     f"SGD {m['sgd']['state_bytes_per_param']:.2f};  peak RSS of a 5-step training run "
+                     f"{m['holonomic']['peak_rss_mib']:.0f} vs {m['sgd']['peak_rss_mib']:.0f} MiB "
+                     f"(ratio {m['holonomic']['peak_rss_mib'] / m['sgd']['peak_rss_mib']:.2f})")
+    for key, label in (("t0_fast_vs_reference", "T=0 step, FixedNorm MLP"),
+                       ("fast_vs_reference_orthonormal", "T=0 training step, Orthonormal 512")):
+        if key in r:
+            lines.append(f"  fast path vs plain reference path ({label}): {_fmt(r[key])}")
     return "\n".join(lines)
 
 
@@ -315,8 +341,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", default="bench.json", help="where to write the results (default bench.json)")
     parser.add_argument("--quick", action="store_true", help="fewer rounds and sizes (a smoke run)")
     parser.add_argument("--threads", type=int, default=None, help="torch thread count (default: torch's)")
+    parser.add_argument("--only", nargs="+", choices=BENCHMARKS, default=list(BENCHMARKS),
+                        help="run only these benchmarks (default: all)")
     args = parser.parse_args(argv)
-    result = run_suite(quick=args.quick, threads=args.threads)
+    result = run_suite(quick=args.quick, threads=args.threads, only=tuple(args.only))
     print(format_table(result))
     with open(args.json, "w") as f:
         json.dump(result, f, indent=1)

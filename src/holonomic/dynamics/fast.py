@@ -37,8 +37,19 @@ is read with one host synchronisation *before* anything is written.  If it
 fails, the generators are restored and the caller runs the plain path, which
 then raises the documented error (or, for a false alarm such as an
 overflowing Gram entry, takes the step).  Parameters the fast path does not
-cover (orthonormal, non-contiguous, geodesic projection, substeps) go through
-the plain per-parameter update inside the same transaction.
+cover (rectangular orthonormal, non-contiguous, geodesic projection,
+substeps) go through the plain per-parameter update inside the same
+transaction.
+
+**Square orthonormal parameters** take the closed-form RATTLE step of
+:mod:`holonomic.dynamics.fast_orthonormal`, batched over the same-shaped
+parameters of a group (``torch.stack``, batched matrix products).
+
+**Noise** is drawn with ``Tensor.normal_`` (the same stream as
+``torch.randn``) into one buffer per parameter that the optimizer keeps
+outside its state (not checkpointed, allocated at the first step with
+``T > 0``).  A buffer is only read within the step that filled it, so an
+abandoned step leaves nothing behind but scratch values.
 """
 
 from __future__ import annotations
@@ -51,7 +62,8 @@ import torch
 from torch import Tensor
 
 from holonomic.dynamics.base import ParameterStepInfo, Pending, StepInfo, step_label
-from holonomic.geometry import UNCONSTRAINED, FixedNorm, Unconstrained, constraint_of
+from holonomic.dynamics.fast_orthonormal import square_orthonormal_baoab
+from holonomic.geometry import UNCONSTRAINED, FixedNorm, Orthonormal, Unconstrained, constraint_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from holonomic.dynamics.langevin import Langevin
@@ -167,7 +179,23 @@ def _fast_eligible(p: Tensor, geometry: Any, group: dict[str, Any], state: dict[
     momentum = state.get("momentum")
     if momentum is not None and not (momentum.is_contiguous() and momentum.dtype == p.dtype):
         return False
+    if isinstance(geometry, Orthonormal):
+        return _square(p)
     return isinstance(geometry, Unconstrained) or (isinstance(geometry, FixedNorm) and p.dim() >= 1)
+
+
+def _square(p: Tensor) -> bool:
+    return p.dim() >= 2 and p.shape[0] == p[0].numel()
+
+
+def _noise(opt: "Langevin", p: Tensor) -> Tensor:
+    """Gaussian noise of ``p``'s shape from the integrator's generator, drawn
+    into the parameter's buffer (same values as ``torch.randn``)."""
+    buffers = opt.__dict__.setdefault("_noise_buffers", {})
+    buf = buffers.get(p)
+    if buf is None or buf.shape != p.shape or buf.dtype != p.dtype or buf.device != p.device:
+        buf = buffers[p] = torch.empty_like(p, memory_format=torch.contiguous_format)
+    return buf.normal_(generator=opt.generator(p.device))
 
 
 def fast_baoab_step(opt: "Langevin") -> bool:
@@ -191,6 +219,7 @@ def fast_baoab_step(opt: "Langevin") -> bool:
         names = group.get("param_names")
         spheres: list[tuple[_Entry, Tensor, Tensor, Tensor | None, dict[str, Tensor], Tensor, str]] = []
         free: list[tuple[_Entry, Tensor, Tensor, Tensor, Tensor | None]] = []
+        square: list[tuple[_Entry, Tensor, Tensor, Tensor | None, Orthonormal]] = []
         for index, p in enumerate(group["params"]):
             if p.grad is None:
                 continue
@@ -211,8 +240,10 @@ def fast_baoab_step(opt: "Langevin") -> bool:
             momentum = opt.state[p].get("momentum")
             w = p.detach()
             q = torch.mul(force, -h) if momentum is None else torch.add(momentum, force, alpha=-h)
-            noise = (torch.randn(p.shape, generator=opt.generator(p.device), dtype=p.dtype, device=p.device)
-                     if temperature > 0 else None)
+            noise = _noise(opt, p) if temperature > 0 else None
+            if isinstance(geometry, Orthonormal):
+                square.append((entry, w, q, noise, geometry))
+                continue
             if isinstance(geometry, Unconstrained):
                 free.append((entry, w, q, force, noise))
                 continue
@@ -232,6 +263,11 @@ def fast_baoab_step(opt: "Langevin") -> bool:
             flags.append(_plan_spheres(opt, spheres, h, decay, sigma))
         if free:
             flags.append(_plan_free(opt, free, h, decay, sigma))
+        if square:
+            flag = _plan_square(opt, square, h, decay, sigma)
+            if flag is None:
+                return _abandon(opt, saved)
+            flags.append(flag)
     if not entries:
         opt.last_info = StepInfo(())
         return True
@@ -289,6 +325,50 @@ def _plan_spheres(opt: "Langevin", spheres: list, h: float, decay: float, sigma:
 
         entry.commit = commit
     return ok
+
+
+def _plan_square(opt: "Langevin", square: list, h: float, decay: float, sigma: float) -> Tensor | None:
+    """Closed-form BAOAB for square orthonormal parameters, batched over those
+    of one shape, dtype, device and tolerance; ``None`` when the closed form
+    does not apply (the caller abandons the fast path)."""
+    batches: dict[tuple, list] = {}
+    for item in square:
+        w, geometry = item[1], item[4]
+        batches.setdefault((w.shape, w.dtype, w.device, geometry._tol(w.dtype)), []).append(item)
+    flags = []
+    for (shape, _, _, tol), items in batches.items():
+        n = shape[0]
+        scales = {g.scale for *_, g in items}
+        if len(scales) > 1:  # different scales in one batch: one unit scale, folded per matrix
+            def stacked(ts: list[Tensor]) -> Tensor:
+                return torch.stack([t.reshape(n, n) / g.scale for t, (*_, g) in zip(ts, items)])
+            scale = 1.0
+        else:
+            def stacked(ts: list[Tensor]) -> Tensor:
+                mats = [t.reshape(n, n) for t in ts]
+                return mats[0].unsqueeze(0) if len(mats) == 1 else torch.stack(mats)
+            scale = scales.pop()
+        noise = None if sigma <= 0 else stacked([it[3] for it in items])
+        out = square_orthonormal_baoab(stacked([it[1] for it in items]), stacked([it[2] for it in items]),
+                                       noise, scale=scale, step=h, decay=decay, sigma=sigma, tolerance=tol)
+        if out is None:
+            return None
+        w2, p2, kinetic, ok, degree = out
+        flags.append(ok)
+        for i, (entry, w, _, _, geometry) in enumerate(items):
+            entry.iterations = degree
+            factor = geometry.scale / scale
+
+            def commit(entry=entry, w=w, w2=w2[i], p2=p2[i], kinetic=kinetic[i], factor=factor):
+                momentum = p2.view(w.shape)
+                if factor != 1.0:
+                    w2, momentum, kinetic = w2 * factor, momentum * factor, kinetic * factor**2
+                w.copy_(w2.view(w.shape))
+                opt.state[entry.param]["momentum"] = momentum
+                return kinetic
+
+            entry.commit = commit
+    return torch.stack(flags).all()
 
 
 def _plan_free(opt: "Langevin", free: list, h: float, decay: float, sigma: float) -> Tensor:

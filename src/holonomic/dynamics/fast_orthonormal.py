@@ -1,0 +1,268 @@
+r"""Fast path of the BAOAB step for square orthonormal parameters (``O(n)``).
+
+The plain path (:func:`holonomic.dynamics.operators.run_scheme` with
+:func:`holonomic.geometry.stiefel.stiefel_shake`) is the reference; the
+parity tests in ``tests/speed`` compare the two in float64.
+
+**The RATTLE drift on O(n) in closed form.**  Let ``X`` be square with
+``X^T X = I`` (unit frame, the scale divided out) and ``P`` tangent, so
+``P = X Omega`` with ``Omega = X^T P`` skew.  SHAKE looks for symmetric
+``S`` with ``X' = Y + X S``, ``Y = X + s P``, ``X'^T X' = I``.  Write
+``X' = X K`` with ``K = M + s Omega`` and ``M = I + S`` symmetric.  Then::
+
+    K^T K = (M - s Omega)(M + s Omega) = M^2 + s (M Omega - Omega M) - s^2 Omega^2 = I.
+
+If ``M`` commutes with ``Omega`` the bracket vanishes and
+``M^2 = I + s^2 Omega^2``.  ``Omega^2 = -Omega^T Omega`` is symmetric with
+eigenvalues ``-omega_j^2``, so ``I + s^2 Omega^2`` is symmetric positive
+semi-definite exactly when ``s ||Omega||_2 <= 1``, and its principal square
+root ``R = sqrt(I + s^2 Omega^2)`` is a power series in ``Omega^2``: it is
+symmetric, commutes with ``Omega``, and tends to ``I`` as ``s -> 0``.  So
+``S = R - I`` solves the SHAKE equation; it is the root that vanishes with
+the step, the one the reference iteration started at ``S = 0`` converges to
+(the root near 0 is unique for small ``s`` by the implicit function
+theorem).  With ``Z = s^2 Omega^2`` (``||Z||_2 = s^2 ||Omega||_2^2``)::
+
+    X' = X K,   K = R + s Omega,   R = sum_j binom(1/2, j) Z^j.
+
+The velocity projection of RATTLE keeps ``Omega``: ``X'^T (X' - X) / s =
+(I - K^T) / s = (I - R)/s + Omega``, whose symmetric part ``(I - R)/s`` is
+removed by the tangent projection at ``X'``, leaving ``P' = X' Omega``.
+
+**One step in the body frame.**  With ``V = P - h f`` (``f`` the force in
+the unit frame), ``d = e^{-gamma h}``, ``sigma`` the noise scale and
+``xi`` the noise, one BAOAB step is::
+
+    B   Omega1 = skew(X^T V)                      (tangent projection at X)
+    A   X1 = X K(Omega1)                          (Omega unchanged)
+    O   Omega2 = d Omega1 + sigma skew(X1^T xi)   (tangent projection at X1)
+    A   X2 = X1 K(Omega2),   P2 = X2 Omega2
+
+The drift's input is the tangent momentum *after* the kick (first A) or
+the thermostat (second A).  At ``T = 0``, ``Omega2 = d Omega1``, so both
+drifts are series in the same ``Z``: ``K1 K2 = E(Z) + s Omega O(Z)`` with
+``E(z) = r(z) r(d^2 z) + d z`` and ``O(z) = d r(z) + r(d^2 z)``,
+``r(z) = sqrt(1 + z)``, and the whole step costs five matrix products plus
+those of the series (none beyond ``Z`` itself while ``||Z||`` is tiny, as in
+training).
+
+**Truncation, existence, failure.**  ``zeta = max_i sum_j |Z_ij|`` bounds
+``||Z||_2`` (``Z`` is symmetric).  The series are cut at the smallest
+degree whose tail bound ``sum_{j > m} |c_j| zeta^j`` is below a quarter of
+the constraint's tolerance (set by the dtype, as for the iterative SHAKE);
+the degree is reported as the projection iteration count.  Reading
+``zeta`` is one host synchronisation per drift (one per step at ``T = 0``).
+When ``zeta > 1/4`` (``s ||Omega||_2`` may exceed ``1/2``), when no degree
+up to ``MAX_DEGREE`` suffices, or when a value is not finite, the fast path
+is abandoned (nothing changed) and the plain path takes the step or raises
+the documented error; a solution exists only for ``s ||Omega||_2 <= 1``.
+
+**Roundoff drift.**  The closed form assumes ``X^T X = I``; the reference
+uses the measured ``G = X^T X`` and so corrects drift every step.  Here four
+fixed unit probe vectors ``v`` measure ``|v^T (X^T X - I) v| = ||X v|^2 - 1|``
+(matrix-vector products in float64); when it exceeds an eighth of the
+tolerance, ``X`` is first moved along the normal at ``X`` by one
+Newton-Schulz step ``X <- X (3 I - X^T X) / 2``, which squares the error.
+In float32 this happened on one step in five (measured, n = 256); where float64
+matrix-vector roundoff exceeds the threshold (float64 parameters, large
+``n``), it happens every step.
+"""
+
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+
+import torch
+from torch import Tensor
+
+__all__ = [
+    "MAX_DEGREE",
+    "sqrt_series",
+    "series_degree",
+    "matrix_series",
+    "square_orthonormal_baoab",
+]
+
+#: Highest series degree tried before the fast path gives way to the plain one.
+MAX_DEGREE = 24
+_TERMS = 48  # coefficients kept for tail bounds (zeta <= 1/4: 4^-48 is negligible)
+_ZETA_MAX = 0.25
+
+
+@lru_cache(maxsize=None)
+def sqrt_series(terms: int = _TERMS) -> tuple[float, ...]:
+    """Taylor coefficients ``binom(1/2, j)`` of ``sqrt(1 + z)``, ``j < terms``."""
+    c = [1.0]
+    for j in range(terms - 1):
+        c.append(c[-1] * (0.5 - j) / (j + 1))
+    return tuple(c)
+
+
+@lru_cache(maxsize=64)
+def _combined_series(decay: float) -> tuple[tuple[float, ...], tuple[float, ...]]:
+    """``E`` and ``O`` of the module docstring (two drifts at ``T = 0``)."""
+    r = sqrt_series()
+    rd = [c * decay ** (2 * j) for j, c in enumerate(r)]
+    e = [sum(r[i] * rd[j - i] for i in range(j + 1)) for j in range(_TERMS)]
+    e[1] += decay
+    o = [decay * a + b for a, b in zip(r, rd)]
+    return tuple(e), tuple(o)
+
+
+def series_degree(coefs: tuple[float, ...], zeta: float, target: float, weight: float = 1.0) -> int | None:
+    """Smallest ``m`` with ``weight * sum_{j > m} |c_j| zeta^j <= target``;
+    ``None`` when ``zeta`` is too large or ``MAX_DEGREE`` does not suffice."""
+    if not 0.0 <= zeta <= _ZETA_MAX:
+        return None
+    terms = [abs(c) * zeta**j for j, c in enumerate(coefs)]
+    tail = weight * sum(terms)
+    for m, t in enumerate(terms):
+        tail -= weight * t
+        if tail <= target:
+            return m if m <= MAX_DEGREE else None
+    return None
+
+
+def _block_size(degree: int) -> int:
+    """Powers ``Z^1..Z^q`` for Paterson-Stockmeyer evaluation: minimise
+    ``(q - 1) + (ceil(degree / q) - 1)`` matrix products."""
+    if degree <= 1:
+        return 1
+    return min(range(1, degree + 1), key=lambda q: (q - 1) + (-(-degree // q) - 1))
+
+
+def _powers(z: Tensor, q: int) -> list[Tensor]:
+    out = [z]
+    for _ in range(q - 1):
+        out.append(out[-1] @ z)
+    return out
+
+
+def matrix_series(coefs: tuple[float, ...], powers: list[Tensor]) -> Tensor:
+    r"""``sum_j c_j Z^j`` from ``powers = [Z, ..., Z^q]`` (Paterson-Stockmeyer)::
+
+        p(Z) = B_0 + Z^q (B_1 + Z^q (... B_last)),  B_i = sum_{j<q} c_{iq+j} Z^j
+
+    (the last block may also use ``Z^q``); ``ceil(m / q) - 1`` products.
+    Returns a new tensor.
+    """
+    m = len(coefs) - 1
+    q = len(powers)
+
+    def block(cs: tuple[float, ...]) -> Tensor:
+        out = torch.zeros_like(powers[0]) if len(cs) == 1 else powers[0].mul(cs[1])
+        for j, c in enumerate(cs[2:], start=1):
+            out.add_(powers[j], alpha=c)
+        out.diagonal(dim1=-2, dim2=-1).add_(cs[0])
+        return out
+
+    n_blocks = max(1, -(-m // q))
+    acc = block(coefs[(n_blocks - 1) * q:])
+    for i in range(n_blocks - 2, -1, -1):
+        acc = torch.baddbmm(block(coefs[i * q:(i + 1) * q]), powers[-1], acc)
+    return acc
+
+
+def _scaled_skew(a: Tensor, b: Tensor, alpha: float) -> Tensor:
+    """``alpha (a^T b - b^T a)``, batched (one product and one pass)."""
+    m = torch.baddbmm(a.new_zeros(()), a.transpose(-1, -2), b, beta=0, alpha=alpha)
+    return m - m.transpose(-1, -2)
+
+
+@lru_cache(maxsize=16)
+def _probe(n: int, device: str) -> Tensor:
+    """Four fixed unit probe vectors (float64) for the drift check, from a
+    private seeded generator (the global RNG is not touched)."""
+    g = torch.Generator().manual_seed(12345)
+    v = torch.randn(n, 4, generator=g, dtype=torch.float64)
+    return (v / v.norm(dim=0)).to(device)
+
+
+def _zeta(z: Tensor) -> Tensor:
+    """``||Z||_F``, an upper bound of ``||Z||_2`` (one fused pass), batch max."""
+    return torch.linalg.vector_norm(z, dim=(-2, -1)).amax()
+
+
+def _drift_error(w: Tensor, scale2: float) -> Tensor:
+    """``max |v^T (X^T X - I) v| = max | |X v|^2 - 1 |`` over the unit probe
+    vectors and the batch, ``X = W / scale``, computed in float64 from
+    matrix-vector products (for random symmetric ``X^T X - I`` it is about
+    the size of a typical entry, for ``eps I`` it is ``eps``)."""
+    xv = w.to(torch.float64) @ _probe(w.shape[-1], str(w.device))
+    return (xv.square().sum(-2) / scale2 - 1.0).abs().amax()
+
+
+def _drift_factor(coefs: tuple[float, ...], odd: tuple[float, ...], z: Tensor, a: Tensor,
+                  m_e: int, m_o: int) -> Tensor:
+    """``E(Z) + A O(Z)`` with the series cut at degrees ``m_e``, ``m_o``."""
+    powers = _powers(z, _block_size(max(m_e, m_o, 1)))
+    k = matrix_series(coefs[:m_e + 1], powers)
+    if m_o == 0:
+        return k.add_(a, alpha=odd[0])
+    return torch.baddbmm(k, a, matrix_series(odd[:m_o + 1], powers))
+
+
+def square_orthonormal_baoab(
+    w: Tensor,
+    v: Tensor,
+    noise: Tensor | None,
+    *,
+    scale: float,
+    step: float,
+    decay: float,
+    sigma: float,
+    tolerance: float,
+) -> tuple[Tensor, Tensor, Tensor, Tensor, int] | None:
+    r"""One BAOAB step for a batch of square orthonormal matrices.
+
+    ``w`` (b, n, n) with ``W^T W = scale^2 I``, ``v = P - h f`` (the momentum
+    after the full kick, not yet projected), ``noise`` the standard normal
+    noise (``sigma`` its scale) or ``None`` at ``T = 0``, all in the
+    parameter's units; the unit frame of the module docstring is
+    ``X = W / scale``, and the scale is folded into the products.  Returns
+    ``(W2, P2, kinetic, ok, degree)`` (``kinetic`` = ``|P2|^2 / 2`` per
+    matrix, ``ok`` a 0-d flag of finite results) or ``None`` when the closed
+    form does not apply (module docstring).  Nothing is modified in place.
+    """
+    s = 0.5 * step
+    scale2 = scale * scale
+    a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
+    z = torch.bmm(a, a)  # Z = s^2 Omega^2
+    target = 0.25 * tolerance
+    zeta, drift = (float(t) for t in torch.stack([_zeta(z), _drift_error(w, scale2)]).cpu())  # one sync
+    if not (math.isfinite(zeta) and math.isfinite(drift)):
+        return None
+    if drift > 0.125 * tolerance:  # roundoff drift: one Newton-Schulz step along the normal at X
+        g = torch.bmm(w.transpose(-1, -2), w).mul_(-0.5 / scale2)
+        g.diagonal(dim1=-2, dim2=-1).add_(1.5)
+        w = torch.bmm(w, g)
+    if noise is None:
+        e, o = _combined_series(decay)
+        m_e = series_degree(e, zeta, 0.5 * target)
+        m_o = series_degree(o, zeta, 0.5 * target, weight=math.sqrt(zeta))
+        if m_e is None or m_o is None:
+            return None
+        w2 = torch.bmm(w, _drift_factor(e, o, z, a, m_e, m_o))
+        a2 = a
+        p_alpha = decay / s
+        degree = max(m_e, m_o, 1)
+    else:
+        r = sqrt_series()
+        m1 = series_degree(r, zeta, target)
+        if m1 is None:
+            return None
+        w1 = torch.bmm(w, _drift_factor(r, (1.0,), z, a, m1, 0))
+        a2 = _scaled_skew(w1, noise, 0.5 * s * sigma / scale2).add_(a, alpha=decay)
+        z2 = torch.bmm(a2, a2)
+        zeta2 = float(_zeta(z2))  # the second drift has its own degree (one more sync)
+        m2 = series_degree(r, zeta2, target) if math.isfinite(zeta2) else None
+        if m2 is None:
+            return None
+        w2 = torch.bmm(w1, _drift_factor(r, (1.0,), z2, a2, m2, 0))
+        p_alpha = 1.0 / s
+        degree = max(m1, m2, 1)
+    p2 = torch.bmm(w2, a2).mul_(p_alpha)  # P2 = scale X2 Omega2 = W2 A2 / s
+    kinetic = 0.5 * torch.linalg.vector_norm(p2, dim=(-2, -1)) ** 2
+    ok = torch.isfinite(kinetic.sum() + w2.sum())
+    return w2, p2, kinetic, ok, degree
