@@ -119,7 +119,7 @@ def test_record_fields_against_direct_computation():
     assert p["residual_rms"] == pytest.approx(float(rel.pow(2).mean().sqrt()), abs=1e-18)
     assert p["tangent_dof"] == 16 * 7
     assert p["kinetic_temperature"] == pytest.approx(float((mom**2).sum()) / (16 * 7))
-    gt = g - (g * w).sum(1, keepdim=True) * w / 1.5**2  # tangent part (MATH.md 3)
+    gt = g - (g * w).sum(1, keepdim=True) * w / 1.5**2  # tangent part (docs/math.md 3)
     assert p["grad_norm_tangent"] == pytest.approx(float(gt.norm()))
     assert p["grad_norm_normal"] == pytest.approx(float((g - gt).norm()))
     assert p["row_norm_mean"] == pytest.approx(1.5)

@@ -78,18 +78,17 @@ def test_shake_lands_on_the_set_along_the_old_normal(constraint, shape):
         # the correction is normal at the old point w
         correction = res.position - y
         assert constraint.tangent(w, correction).norm() < 1e-12 * max(1.0, correction.norm())
-        # and of second order in the step (MATH.md 3: lam, S = O(s^2))
+        # and of second order in the step (docs/math.md sec. 3: lam, S = O(s^2), derived there from the quadratic)
         assert correction.norm() < 10 * s**2 * p.norm() ** 2 / min(1.0, float(w.norm()))
 
 
 def test_sphere_shake_fails_without_a_real_root():
-    # MATH.md 3: for tangent p the discriminant is negative when s|p| > r.
+    # docs/math.md 3: for tangent p the discriminant is negative when s|p| > r.
     c = FixedNorm(1.0, over="rows")
     w = torch.tensor([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0]])
     p = torch.tensor([[0.0, 2.0, 0.0], [0.0, 0.0, 0.5]])
     res = c.shake(w, w + 1.0 * p)
     assert not bool(res.ok)
-    assert torch.isfinite(res.position).all() or not bool(res.ok)
 
 
 def test_stiefel_shake_reports_iterations_and_fails_cleanly():
@@ -122,7 +121,7 @@ def test_geodesic_stays_on_set_keeps_speed_and_matches_small_rattle_steps(constr
 
 
 def test_stiefel_geodesic_square_case_matches_matrix_exponential():
-    # For k = n the geodesic is X expm(t X^T V) (MATH.md 3, EAS 1998).
+    # For k = n the geodesic is X expm(t X^T V) (Edelman, Arias & Smith 1998, sec. 2.2, recalled from memory).
     q, _ = torch.linalg.qr(torch.randn(4, 4, generator=torch.Generator().manual_seed(0)))
     a = torch.randn(4, 4, generator=torch.Generator().manual_seed(1))
     a = a - a.T
@@ -151,7 +150,7 @@ def test_stiefel_geodesic_rectangular_satisfies_the_geodesic_equation():
         (FixedNorm(over="rows"), (6, 4), 6 * 3),
         (FixedNorm(over="columns"), (6, 4), 4 * 5),
         (FixedNorm(over="all"), (6, 4), 23),
-        (Orthonormal(over="rows"), (3, 7), 7 * 3 - 6),  # n k - k(k+1)/2, MATH.md 3
+        (Orthonormal(over="rows"), (3, 7), 7 * 3 - 6),  # n k - k(k+1)/2: Edelman, Arias & Smith 1998, sec. 2.2 (memory)
         (Orthonormal(over="columns"), (5, 5), 10),  # dim O(5) = 5*4/2
     ],
 )
@@ -161,8 +160,8 @@ def test_tangent_degrees_of_freedom_match_numerical_rank(constraint, shape, dof)
     w = _point(constraint, shape)
     n = math.prod(shape)
     basis = torch.eye(n).reshape(n, *shape)
-    proj = torch.stack([constraint.tangent(w, b).reshape(-1) for b in basis])
-    assert int(torch.linalg.matrix_rank(proj)) == dof
+    projector = torch.stack([constraint.tangent(w, b).reshape(-1) for b in basis])
+    assert int(torch.linalg.matrix_rank(projector)) == dof
 
 
 @pytest.mark.parametrize(

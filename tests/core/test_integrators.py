@@ -12,7 +12,7 @@ from .registry import CONSTRAINTS, INTEGRATORS, Toy, toy_data, train
 
 PAIRS = [(i, c) for i in INTEGRATORS for c in CONSTRAINTS]
 PAIR_IDS = [f"{i}-{c}" for i, c in PAIRS]
-# roundoff levels (relative): float64 ~1e-14, float32 ~1e-7 (issue 2)
+# roundoff levels (relative): float64 ~1e-14, float32 ~1e-7 (a small multiple of machine epsilon)
 TOL = {torch.float64: 1e-13, torch.float32: 2e-6}
 
 

@@ -58,7 +58,7 @@ def _vmf_mean_resultant(optimizer_factory, *, sigma_g, rows=1000, d=3, steps=120
 @pytest.mark.slow
 def test_vmf_with_unknown_gradient_noise_adaptive_right_plain_hot():
     temperature, step, friction, sigma_g, d = 0.2, 0.1, 1.0, 2.0, 3
-    kappa = 1.0 / temperature  # U = -a.w, |a| = 1, r = 1: w ~ vMF(a, r|a|/T) (MATH.md sec. 5)
+    kappa = 1.0 / temperature  # U = -a.w, |a| = 1, r = 1: w ~ vMF(a, r|a|/T) (docs/math.md sec. 5)
     # Mean resultant length A_d(kappa) = I_{d/2}(kappa)/I_{d/2-1}(kappa) (Mardia & Jupp 2000)
     truth = special.ive(d / 2, kappa) / special.ive(d / 2 - 1, kappa)
     assert truth == pytest.approx(1 / math.tanh(kappa) - 1 / kappa, rel=1e-12)  # d = 3 closed form

@@ -27,7 +27,7 @@ def ar1(rho: float, chains: int, draws: int, seed: int) -> np.ndarray:
 @pytest.mark.parametrize("rho, chains, draws", [(0.9, 20, 20000), (0.5, 4, 20000),
                                                 (0.3, 4, 20000)])
 def test_ar1_autocorrelation_time_matches_closed_form(rho, chains, draws):
-    # Closed form for AR(1): tau = (1 + rho)/(1 - rho) (MATH.md section 5; any time-series text,
+    # Closed form for AR(1): tau = (1 + rho)/(1 - rho) (docs/math.md section 5; any time-series text,
     # e.g. Sokal 1997, section 3). Error bar: Madras-Sokal formula returned as stderr.
     x = ar1(rho, chains, draws, seed=11)
     est = integrated_autocorrelation_time(x)

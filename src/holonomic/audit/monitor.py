@@ -85,7 +85,7 @@ class Audit:
     ``iterations_mean``/``_max``  SHAKE iterations over the steps since the
                                   last record (``optimizer.last_info``)
     ``kinetic_temperature``       ``T_kin = |P|^2 / N_f``, ``N_f`` the tangent
-                                  degrees of freedom (MATH.md 3)
+                                  degrees of freedom (docs/math.md 3)
     ``kinetic_z``                 ``(T_kin - T) / (T sqrt(2 / N_f))``
     ``grad_norm_tangent/normal``  ``|Pi_W g|``, ``|g - Pi_W g|``
     ``weight_norm``, ``row_norm_*``  Frobenius norm; min/mean/max row norm

@@ -1,6 +1,6 @@
 r"""Estimators behind the audit: constraint violations and kinetic temperature.
 
-Kinetic temperature (unit mass, MATH.md section 3).  At equilibrium the
+Kinetic temperature (unit mass, docs/math.md section 3).  At equilibrium the
 momentum ``P`` of a parameter on a constraint set is a Gaussian with variance
 ``T`` on the tangent space, which has ``N_f`` dimensions
 (``Constraint.tangent_dof``), so ``|P|^2 / T`` is chi-square with ``N_f``

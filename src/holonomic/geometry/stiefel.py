@@ -41,7 +41,7 @@ def stiefel_shake(
 
     For ``y = x + s p`` with ``p`` tangent, ``B = I + s x^T p`` and
     ``S = O(s^2)``, and the iteration contracts at rate ``O(s |p|_2)``; it
-    fails to converge roughly when ``s |p|_2`` approaches 1 (MATH.md 3).
+    fails to converge roughly when ``s |p|_2`` approaches 1 (docs/math.md 3).
     Using the actual ``G`` rather than ``I`` keeps the result on the manifold
     to roundoff even if ``x`` carries roundoff error.
 

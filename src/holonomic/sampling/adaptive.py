@@ -19,7 +19,7 @@ with :math:`g(W) = 0` and :math:`P` tangent at :math:`W`; :math:`f` the force fr
 ``constraint.tangent_dof(shape)``: ``rows (d - 1)`` for fixed-norm rows, not ``rows d``).
 With isotropic gradient noise of diffusion :math:`\sigma_G^2` per unit time the equation for
 :math:`\xi` settles where :math:`|P|^2 = N_f T`, i.e. :math:`\xi \approx A + \sigma_G^2/(2T)`,
-and :math:`W` follows :math:`\exp(-U/T)` on the constraint set. This is the MATH.md form
+and :math:`W` follows :math:`\exp(-U/T)` on the constraint set. This is the docs/math.md form
 :math:`d\xi = (|P|^2 - N_f T)/\mu\,dt` with :math:`\mu = N_f T m`; scaling by
 :math:`N_f T` makes ``thermostat_mass`` independent of the layer size and of the
 temperature.
