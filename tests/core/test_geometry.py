@@ -8,7 +8,16 @@ import torch
 from holonomic import FixedNorm, Orthonormal
 from holonomic.geometry.stiefel import stiefel_geodesic
 
-torch.set_default_dtype(torch.float64)
+
+
+@pytest.fixture(autouse=True)
+def _float64_default():
+    # these checks are at float64 roundoff; restore the default afterwards so
+    # other test modules are unaffected
+    previous = torch.get_default_dtype()
+    torch.set_default_dtype(torch.float64)
+    yield
+    torch.set_default_dtype(previous)
 
 CONSTRAINTS = [
     (FixedNorm(1.5, over="rows"), (6, 4)),

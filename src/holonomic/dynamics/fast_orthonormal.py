@@ -233,6 +233,10 @@ def square_orthonormal_baoab(
     zeta, drift = (float(t) for t in torch.stack([_zeta(z), _drift_error(w, scale2)]).cpu())  # one sync
     if not (math.isfinite(zeta) and math.isfinite(drift)):
         return None
+    if drift > math.sqrt(0.125 * tolerance):
+        # too far off the set for one Newton-Schulz step to reach roundoff (e.g.
+        # a weight projected in float32 and then cast to float64): plain path
+        return None
     if drift > 0.125 * tolerance:  # roundoff drift: one Newton-Schulz step along the normal at X
         g = torch.bmm(w.transpose(-1, -2), w).mul_(-0.5 / scale2)
         g.diagonal(dim1=-2, dim2=-1).add_(1.5)
