@@ -29,7 +29,7 @@ from typing import NamedTuple
 import torch
 from torch import Tensor
 
-__all__ = ["Constraint", "ShakeResult", "check_positive", "default_tolerance"]
+__all__ = ["Constraint", "ShakeResult", "check_positive", "default_tolerance", "matrix_shape"]
 
 
 class ShakeResult(NamedTuple):
@@ -52,6 +52,11 @@ def default_tolerance(dtype: torch.dtype) -> float:
     and 2e-15 in float64).  Common practice, no source.
     """
     return 8.0 * torch.finfo(dtype).eps
+
+
+def matrix_shape(shape: torch.Size | tuple[int, ...]) -> tuple[int, int]:
+    """``(rows, row length)`` of a tensor viewed as ``W.reshape(W.shape[0], -1)``."""
+    return shape[0], math.prod(shape[1:])
 
 
 def check_positive(name: str, value: float, *, allow_zero: bool = False) -> float:

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from holonomic.geometry.base import Constraint, ShakeResult, check_positive
+from holonomic.geometry.base import Constraint, ShakeResult, check_positive, matrix_shape
 
 __all__ = ["FixedNorm"]
 
@@ -87,10 +87,7 @@ class FixedNorm(Constraint):
                 f"FixedNorm(over={self.over!r}) on {name} of shape {shape}: needs a tensor with "
                 "at least 2 dimensions; use over='all' for a vector"
             )
-        rows = shape[0]
-        length = 1
-        for s in shape[1:]:
-            length *= s
+        rows, length = matrix_shape(shape)
         d = length if self.over == "rows" else rows
         if d < 2:
             raise ValueError(

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from holonomic.geometry.base import Constraint, ShakeResult, check_positive, default_tolerance
+from holonomic.geometry.base import Constraint, ShakeResult, check_positive, matrix_shape, default_tolerance
 
 __all__ = ["Orthonormal", "stiefel_shake", "stiefel_tangent", "stiefel_geodesic"]
 
@@ -176,10 +176,7 @@ class Orthonormal(Constraint):
                 f"Orthonormal on {name} of shape {shape}: needs a tensor with at least 2 "
                 "dimensions; use FixedNorm(over='all') for a vector"
             )
-        rows = shape[0]
-        length = 1
-        for s in shape[1:]:
-            length *= s
+        rows, length = matrix_shape(shape)
         if self.over == "rows" and rows > length:
             raise ValueError(
                 f"Orthonormal(over='rows') on {name} of shape {shape}: {rows} rows cannot be "
@@ -231,9 +228,6 @@ class Orthonormal(Constraint):
 
     def tangent_dof(self, shape: torch.Size | tuple[int, ...]) -> int:
         shape = tuple(shape)
-        rows = shape[0]
-        length = 1
-        for s in shape[1:]:
-            length *= s
+        rows, length = matrix_shape(shape)
         n, k = (length, rows) if self.over == "rows" else (rows, length)
         return n * k - k * (k + 1) // 2
