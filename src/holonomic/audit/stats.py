@@ -25,7 +25,7 @@ import torch
 from scipy import stats
 from torch import Tensor
 
-from holonomic.geometry import Constraint, FixedNorm, Orthonormal
+from holonomic.geometry import Constraint
 
 __all__ = [
     "kinetic_temperature",
@@ -80,18 +80,11 @@ def constraint_violations(constraint: Constraint, w: Tensor) -> Tensor:
     r"""The relative violations whose largest absolute value is
     ``constraint.residual(w)``, as a 1-D tensor.
 
-    :class:`FixedNorm`: ``|w_i| / r - 1`` for every constrained vector;
-    :class:`Orthonormal`: the entries of ``X^T X / s^2 - I``; any other
+    :meth:`Constraint.violations`: for FixedNorm ``|w_i| / r - 1`` for every constrained vector;
+    for Orthonormal the entries of ``X^T X / s^2 - I``; any other
     constraint: its residual alone (so the RMS equals the maximum).
     """
-    if isinstance(constraint, FixedNorm):
-        # The view of the constrained vectors is the constraint's own.
-        return (constraint._vectors(w).norm(dim=1) / constraint.radius - 1.0).reshape(-1)
-    if isinstance(constraint, Orthonormal):
-        x = constraint._frame(w)
-        eye = torch.eye(x.shape[-1], dtype=x.dtype, device=x.device)
-        return (x.t() @ x - eye).reshape(-1)
-    return constraint.residual(w).reshape(1)
+    return constraint.violations(w)
 
 
 def default_residual_tolerance(dtype: torch.dtype) -> float:

@@ -96,6 +96,11 @@ class Constraint(ABC):
         """Position and velocity after following the geodesic from ``(w, p)``
         for time ``t`` (``p`` tangent at ``w``)."""
 
+    def violations(self, w: Tensor) -> Tensor:
+        """The signed relative violations, as a 1-D tensor, whose largest
+        absolute value is :meth:`residual` (default: the residual alone)."""
+        return self.residual(w).reshape(1)
+
     @abstractmethod
     def residual(self, w: Tensor) -> Tensor:
         """Largest relative constraint violation (0-d tensor)."""

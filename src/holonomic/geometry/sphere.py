@@ -142,9 +142,12 @@ class FixedNorm(Constraint):
         new_p = new_p - coef * new_w
         return self._unvectors(new_w, w.shape), self._unvectors(new_p, w.shape)
 
+    def violations(self, w: Tensor) -> Tensor:
+        """``|w_i| / r - 1`` for every constrained vector."""
+        return self._vectors(w).norm(dim=1) / self.radius - 1
+
     def residual(self, w: Tensor) -> Tensor:
-        n = self._vectors(w).norm(dim=1)
-        return (n / self.radius - 1).abs().max()
+        return self.violations(w).abs().max()
 
     def tangent_residual(self, w: Tensor, v: Tensor) -> Tensor:
         a = self._vectors(w)

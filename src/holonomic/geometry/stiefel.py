@@ -214,10 +214,14 @@ class Orthonormal(Constraint):
         x, v = stiefel_geodesic(self._frame(w), self._frame(p), t)
         return self._unframe(x, w.shape), self._unframe(v, w.shape)
 
-    def residual(self, w: Tensor) -> Tensor:
+    def violations(self, w: Tensor) -> Tensor:
+        """The entries of ``X^T X / s^2 - I``."""
         x = self._frame(w)
         eye = torch.eye(x.shape[-1], dtype=x.dtype, device=x.device)
-        return (x.t() @ x - eye).abs().max()
+        return (x.t() @ x - eye).reshape(-1)
+
+    def residual(self, w: Tensor) -> Tensor:
+        return self.violations(w).abs().max()
 
     def tangent_residual(self, w: Tensor, v: Tensor) -> Tensor:
         x = self._frame(w)
