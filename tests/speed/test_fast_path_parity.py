@@ -18,7 +18,7 @@ import holonomic as hn
 TOL = 1e-11  # float64 roundoff over a few dozen steps (common practice, no source)
 
 
-def _net(seed=0):
+def _net(seed=0, orthonormal_last=True):
     g = torch.Generator().manual_seed(seed)
     net = nn.Sequential(nn.Linear(7, 6), nn.Tanh(), nn.Linear(6, 5), nn.Tanh(), nn.Linear(5, 4), nn.Tanh(),
                         nn.Linear(4, 3)).double()
@@ -28,7 +28,8 @@ def _net(seed=0):
     hn.constrain(net[0], weight=hn.FixedNorm(1.5, over="rows"))
     hn.constrain(net[2], weight=hn.FixedNorm(0.7, over="columns"))
     hn.constrain(net[4], weight=hn.FixedNorm(2.0, over="all"))
-    hn.constrain(net[6], weight=hn.Orthonormal(over="rows"))  # not on the fast path: plain inside it
+    if orthonormal_last:
+        hn.constrain(net[6], weight=hn.Orthonormal(over="rows"))  # not on the fast path: plain inside it
     return net
 
 

@@ -130,31 +130,54 @@ SHAPE = (784, 1024, 1024, 10)
 LR, MOMENTUM = 0.01, 0.9
 
 
-def bench_steps(rounds: int) -> dict[str, Any]:
+def bench_steps(rounds: int, compiled: bool = False) -> dict[str, Any]:
+    """Benchmarks 1 and 2 (and, eager only, fast path vs reference); keys get
+    a ``_compiled`` suffix for ``Langevin(compiled=True)``."""
+    suffix = "_compiled" if compiled else ""
     con, free = constrain_rows(mlp(SHAPE)), mlp(SHAPE)
     fake_grads(con)
     fake_grads(free)
-    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM)
+    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, compiled=compiled)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
-    out = {"t0_vs_sgd": compare(ours.step, sgd.step, rounds=rounds, calls=3)}
-    hot = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, temperature=1e-4)
+    out: dict[str, Any] = {}
+    if compiled:
+        out["compile_seconds"] = _first_call_seconds(ours.step)
+    out["t0_vs_sgd" + suffix] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
+    hot = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, temperature=1e-4, compiled=compiled)
     plain = PlainLangevin(free.parameters(), hot.param_groups[0]["lr"], hot.param_groups[0]["friction"], 1e-4)
-    out["hot_vs_plain_langevin"] = compare(hot.step, plain.step, rounds=rounds, calls=3)
-    ref = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM)
-    ref._reference = True
-    out["t0_fast_vs_reference"] = compare(ours.step, ref.step, rounds=max(3, rounds // 3))
+    if compiled:
+        out["compile_seconds_hot"] = _first_call_seconds(hot.step)
+    out["hot_vs_plain_langevin" + suffix] = compare(hot.step, plain.step, rounds=rounds, calls=3)
+    if not compiled:
+        ref = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM)
+        ref._reference = True
+        out["t0_fast_vs_reference"] = compare(ours.step, ref.step, rounds=max(3, rounds // 3))
     return out
 
 
-def bench_training(rounds: int, batch: int = 128) -> dict[str, Any]:
+def _first_call_seconds(step: Step) -> float:
+    start = time.perf_counter()
+    step()
+    return time.perf_counter() - start
+
+
+def bench_training(rounds: int, batch: int = 128, compiled: bool = False) -> dict[str, Any]:
     g = torch.Generator().manual_seed(2)
     x = torch.randn(batch, SHAPE[0], generator=g)  # invented data
     y = torch.randint(0, SHAPE[-1], (batch,), generator=g)
     con, free = constrain_rows(mlp(SHAPE)), mlp(SHAPE)
-    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM)
+    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, compiled=compiled)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
-    return {"train_step_vs_sgd": compare(_train_step(con, ours, x, y), _train_step(free, sgd, x, y),
-                                         rounds=rounds, calls=2)}
+    key = "train_step_vs_sgd" + ("_compiled" if compiled else "")
+    return {key: compare(_train_step(con, ours, x, y), _train_step(free, sgd, x, y), rounds=rounds, calls=2)}
+
+
+def bench_compiled(rounds: int) -> dict[str, Any]:
+    """Benchmarks 1-3 again with ``Langevin(compiled=True)``; the first step's
+    wall time (mostly compilation) is reported separately."""
+    out = bench_steps(rounds, compiled=True)
+    out.update(bench_training(rounds, compiled=True))
+    return out
 
 
 def _train_step(model: nn.Module, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor) -> Step:
@@ -270,7 +293,7 @@ def bench_memory() -> dict[str, Any]:
     return {"memory": out}
 
 
-BENCHMARKS = ("steps", "training", "orthonormal", "scaling", "memory")
+BENCHMARKS = ("steps", "training", "compiled", "orthonormal", "scaling", "memory")
 
 
 def run_suite(quick: bool = False, threads: int | None = None,
@@ -292,6 +315,8 @@ def run_suite(quick: bool = False, threads: int | None = None,
         result.update(bench_steps(rounds))
     if "training" in only:
         result.update(bench_training(rounds))
+    if "compiled" in only:
+        result.update(bench_compiled(rounds))
     if "orthonormal" in only:
         result.update(bench_orthonormal(max(3, rounds // 3), (512,) if quick else (512, 1024)))
     if "scaling" in only:
@@ -314,6 +339,14 @@ def format_table(r: dict[str, Any]) -> str:
                   f"2 T>0 step vs unconstrained Langevin (same noise) [<=1.2] {_fmt(r['hot_vs_plain_langevin'])}"]
     if "train_step_vs_sgd" in r:
         lines.append(f"3 training step vs SGD, batch 128               [<=1.10]  {_fmt(r['train_step_vs_sgd'])}")
+    if "t0_vs_sgd_compiled" in r:
+        lines += [f"  Langevin(compiled=True); first step (compiling) {r['compile_seconds']:.0f} s at T=0, "
+                  f"{r['compile_seconds_hot']:.0f} s at T>0:",
+                  f"1c T=0 step vs SGD(momentum, foreach)           [<=1.5]   {_fmt(r['t0_vs_sgd_compiled'])}",
+                  f"2c T>0 step vs unconstrained Langevin           [<=1.2]   "
+                  f"{_fmt(r['hot_vs_plain_langevin_compiled'])}",
+                  f"3c training step vs SGD, batch 128              [<=1.10]  "
+                  f"{_fmt(r['train_step_vs_sgd_compiled'])}"]
     for key, row in r.items():
         if key.startswith("orthonormal_"):
             for kind in ("cayley", "matrix_exp"):

@@ -102,18 +102,25 @@ def _shake_root(norm2: Tensor, step2: Tensor, r2: Tensor) -> tuple[Tensor, Tenso
 
 
 def sphere_baoab_coefficients(
-    gram: dict[str, Tensor], r2: Tensor, *, step: float, decay: float, sigma: float
+    gram: dict[str, Tensor], r2: Tensor, *, step: float | Tensor, decay: float | Tensor,
+    sigma: float | Tensor
 ) -> tuple[Coefs, Coefs, Tensor, Tensor]:
     r"""Closed-form BAOAB-RATTLE step on spheres, from Gram entries (module docstring).
 
-    ``gram`` holds per-vector tensors ``ww, wq, qq`` and, when ``sigma > 0``,
-    ``wx, qx, xx`` (``x`` the noise).  Returns the coefficients of the new
-    position and momentum in the basis ``(w, q, xi)``, the squared norm of the
-    new momentum per vector, and a 0-d flag (finite values, real SHAKE roots).
+    ``gram`` holds per-vector tensors ``ww, wq, qq`` and, for a step with
+    noise, ``wx, qx, xx`` (``x`` the noise).  The step, decay and noise scale
+    are numbers or 0-d tensors (the compiled path passes tensors so that a
+    new learning rate does not recompile); whether the step is noisy is read
+    from the presence of ``"xx"`` in ``gram``.  Returns the coefficients of
+    the new position and momentum in the basis ``(w, q, xi)``, the squared
+    norm of the new momentum per vector, and a 0-d flag (finite values, real
+    SHAKE roots).
     """
     ww, wq, qq = gram["ww"], gram["wq"], gram["qq"]
     s = 0.5 * step
     zero = torch.zeros_like(ww)
+    ones = torch.ones_like(ww)
+    noisy = "xx" in gram
     # B: p1 = q - alpha w
     alpha = wq / ww
     pp = qq - alpha * wq
@@ -123,19 +130,19 @@ def sphere_baoab_coefficients(
     u_w1 = (1 + lam1) * (lam1 / s) * ww + s * pp
     uu = (lam1 / s) ** 2 * ww + pp
     beta = u_w1 / n1
-    w1 = (1 + lam1 - s * alpha, torch.full_like(ww, s))
-    u = (lam1 / s - alpha, torch.ones_like(ww))
+    w1 = (1 + lam1 - s * alpha, s * ones)
+    u = (lam1 / s - alpha, ones)
     pt = (u[0] - beta * w1[0], u[1] - beta * w1[1], zero)
     pt2 = uu - beta * u_w1
     # O: p2 = Pi_w1 (decay pt + sigma xi)
-    if sigma > 0:
+    if noisy:
         wx, qx, xx = gram["wx"], gram["qx"], gram["xx"]
         w1_x = w1[0] * wx + w1[1] * qx
         pt_x = pt[0] * wx + pt[1] * qx
         v2 = decay * decay * pt2 + 2 * decay * sigma * pt_x + sigma * sigma * xx
         w1_v = sigma * w1_x
         gamma = w1_v / n1
-        p2 = (decay * pt[0] - gamma * w1[0], decay * pt[1] - gamma * w1[1], torch.full_like(ww, sigma))
+        p2 = (decay * pt[0] - gamma * w1[0], decay * pt[1] - gamma * w1[1], sigma * ones)
         p2n = v2 - gamma * w1_v
     else:
         p2 = (decay * pt[0], decay * pt[1], zero)
@@ -151,9 +158,9 @@ def sphere_baoab_coefficients(
     u2 = tuple((lam2 / s) * a + b for a, b in zip(w1x, p2))
     p3 = tuple(a - beta2 * b for a, b in zip(u2, w2))
     p3n = (u2u2 - beta2 * u2_w2).clamp_min(0)
-    checks = torch.stack([ww, wq, qq, *w2, *p3, p2n, w2[0] - 0.5] + ([gram["xx"]] if sigma > 0 else []))
+    checks = torch.stack([ww, wq, qq, *w2, *p3, p2n, w2[0] - 0.5] + ([gram["xx"]] if noisy else []))
     ok = torch.isfinite(checks).all() & (disc1 >= 0).all() & (disc2 >= 0).all() & (w2[0] > 0.5).all()
-    if sigma <= 0:
+    if not noisy:
         return (w2[0], w2[1], None), (p3[0], p3[1], None), p3n, ok
     return w2, p3, p3n, ok  # type: ignore[return-value]
 

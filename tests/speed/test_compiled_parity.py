@@ -1,0 +1,143 @@
+"""Parity of the compiled BAOAB step (holonomic.dynamics.compiled) with the
+plain per-parameter reference path, in float64, plus failure behaviour.
+
+The kernel is plain torch code; most tests run it eagerly (fast), one slow
+test runs it through ``torch.compile``.  The reference is the plain path of
+the same class (``opt._reference = True``).  No timing assertions: speed is
+measured by ``python -m holonomic.bench``.
+"""
+
+import copy
+import math
+import warnings
+
+import pytest
+import torch
+from torch import nn
+
+import holonomic as hn
+from holonomic.dynamics import compiled as compiled_mod
+from tests.speed import test_fast_path_parity as fast_parity
+from tests.speed.test_fast_path_parity import _assert_unchanged, _data, _groups, _run, _snapshot, assert_same_run
+
+
+def _net(seed=0):
+    return fast_parity._net(seed, orthonormal_last=False)  # net[6] and every bias unconstrained
+
+
+@pytest.fixture
+def eager_kernel(monkeypatch):
+    """Run the compiled path's kernel without compiling it, and count calls."""
+    calls = []
+
+    def kernel(*args):
+        calls.append(1)
+        return compiled_mod.baoab_kernel(*args)
+
+    monkeypatch.setattr(compiled_mod, "_compiled_kernel", lambda: kernel)
+    return calls
+
+
+def _pair(temperature, friction, **kwargs):
+    net = _net()
+    ref_net = copy.deepcopy(net)
+    opt = hn.Langevin(_groups(net, temperature, friction), step=0.1, friction=friction,
+                      temperature=temperature, seed=5, compiled=True, **kwargs)
+    ref = hn.Langevin(_groups(ref_net, temperature, friction), step=0.1, friction=friction,
+                      temperature=temperature, seed=5, **kwargs)
+    ref._reference = True
+    return net, opt, ref_net, ref
+
+
+@pytest.mark.parametrize("temperature", [0.0, 0.4])
+@pytest.mark.parametrize("friction", [1.0, math.inf])
+def test_compiled_kernel_eager_matches_reference(eager_kernel, temperature, friction):
+    net, opt, ref_net, ref = _pair(temperature, friction)
+    data = _data()
+    _run(net, opt, 40, data)
+    _run(ref_net, ref, 40, data)
+    assert len(eager_kernel) == 40  # every step went through the kernel
+    assert_same_run(net, opt, ref_net, ref)
+
+
+def test_compiled_path_steps_aside_for_what_it_does_not_cover(eager_kernel):
+    # an Orthonormal parameter: the eager fast path takes the step, with the same result
+    net, opt, ref_net, ref = _pair(0.2, 1.0)
+    hn.constrain(net[6], weight=hn.Orthonormal(over="rows"))
+    hn.constrain(ref_net[6], weight=hn.Orthonormal(over="rows"))
+    with torch.no_grad():
+        for layer in (net[6], ref_net[6]):
+            layer.weight.copy_(hn.constraint_of(layer.weight).project(layer.weight))
+    data = _data()
+    _run(net, opt, 5, data)
+    _run(ref_net, ref, 5, data)
+    assert not eager_kernel
+    assert_same_run(net, opt, ref_net, ref)
+
+
+def test_compiled_path_failure_changes_nothing(eager_kernel):
+    net, opt, _, _ = _pair(0.3, 1.0)
+    data = _data()
+    _run(net, opt, 3, data)
+    before = _snapshot(net, opt)
+    x, y = data
+    opt.zero_grad()
+    ((net(x) - y) ** 2).mean().backward()
+    net[2].weight.grad[0, 0] = float("nan")
+    with pytest.raises(hn.IntegrationError, match="non-finite gradient") as err:
+        opt.step()
+    assert err.value.parameter == "Linear.weight"
+    _assert_unchanged(before, (net.state_dict(), opt.state_dict()))
+    assert len(eager_kernel) == 4  # the kernel ran, found the NaN, and wrote nothing
+
+
+def test_compiled_first_step_failure_leaves_no_momentum(eager_kernel):
+    layer = nn.Linear(4, 3).double()
+    hn.constrain(layer, weight=hn.FixedNorm(1.0))
+    opt = hn.Langevin(layer.parameters(), step=1.0, compiled=True)
+    layer.weight.grad = torch.full_like(layer.weight, 50.0)  # s |p| >> r: SHAKE has no real root
+    layer.bias.grad = torch.zeros_like(layer.bias)
+    before = _snapshot(layer, opt)
+    with pytest.raises(hn.IntegrationError, match="projection"):
+        opt.step()
+    _assert_unchanged(before, (layer.state_dict(), opt.state_dict()))
+    assert all("momentum" not in s for s in opt.state.values())  # no buffer left behind
+
+
+def test_compiled_rejects_non_bool():
+    with pytest.raises(ValueError, match="compiled"):
+        hn.Langevin(nn.Linear(2, 2).parameters(), step=0.1, compiled="yes")
+
+
+def test_compile_failure_warns_and_uses_eager_path(monkeypatch):
+    def broken():
+        raise RuntimeError("no C++ compiler")
+
+    monkeypatch.setattr(compiled_mod, "_compiled_kernel", broken)
+    net, opt, ref_net, ref = _pair(0.0, 1.0)
+    data = _data()
+    with pytest.warns(RuntimeWarning, match="no C\\+\\+ compiler"):
+        _run(net, opt, 1, data)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # warned once only
+        _run(net, opt, 4, data)
+    _run(ref_net, ref, 5, data)
+    assert_same_run(net, opt, ref_net, ref)
+
+
+@pytest.mark.slow
+def test_torch_compiled_step_matches_reference_float64():
+    # the real torch.compile path (tens of seconds to compile on a small CPU)
+    for temperature in (0.0, 0.4):
+        net, opt, ref_net, ref = _pair(temperature, 1.0)
+        data = _data()
+        _run(net, opt, 20, data)
+        _run(ref_net, ref, 20, data)
+        assert not getattr(opt, "_compile_failed", False)
+        assert_same_run(net, opt, ref_net, ref)
+        # a new learning rate goes in as data: same compiled function, still exact
+        for group in (opt.param_groups + ref.param_groups):
+            group["lr"] *= 0.5
+        _run(net, opt, 5, data)
+        _run(ref_net, ref, 5, data)
+        assert_same_run(net, opt, ref_net, ref)
