@@ -19,13 +19,17 @@ Benchmarks (issue 6):
    the constraints against the same without them under SGD with momentum.
 4. Orthonormal square hidden layers (512, 1024): a training step with
    ``Orthonormal`` against ``torch.nn.utils.parametrizations.orthogonal``
-   (cayley and matrix_exp maps) with SGD; constraint residuals reported.
+   (cayley and matrix_exp maps) with SGD; constraint residuals reported,
+   and the floor of the ratio to cayley: the plain training step plus the
+   four n x n products a RATTLE step needs, over the cayley step.
 5. Scaling: constrained step time against parameter count (0.25 M to 8 M),
    fitted exponent of ``time ~ count^k``.
 6. Memory: optimizer state bytes per parameter, and peak resident memory
    growth of a short training run against SGD with momentum.
 
-Also reported: the fast path against the plain per-parameter reference path.
+Also reported: benchmarks 1-3 with ``Langevin(compiled=True)`` (``compiled``)
+plus a T = 0 step on a single 2048 x 2048 tensor, where overheads matter
+least; and the fast path against the plain per-parameter reference path.
 """
 
 from __future__ import annotations
@@ -177,6 +181,14 @@ def bench_compiled(rounds: int) -> dict[str, Any]:
     wall time (mostly compilation) is reported separately."""
     out = bench_steps(rounds, compiled=True)
     out.update(bench_training(rounds, compiled=True))
+    # one large tensor, where per-step overheads are small against the memory passes
+    layer, free = nn.Linear(2048, 2048, bias=False), nn.Linear(2048, 2048, bias=False)
+    hn.constrain(layer, weight=hn.FixedNorm(1.0))
+    fake_grads(layer)
+    fake_grads(free)
+    ours = hn.Langevin.from_sgd(layer.parameters(), lr=LR, momentum=MOMENTUM, compiled=True)
+    sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
+    out["one_tensor_vs_sgd_compiled"] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
     return out
 
 
@@ -219,6 +231,7 @@ def bench_orthonormal(rounds: int, widths: tuple[int, ...], steps_check: int = 2
         for _ in range(steps_check):
             ours_step()
         row["our_residual"] = hn.residuals(ours_net)["2.weight"]
+        row["floor"] = _orthonormal_floor(width, x, y, their_step_ms=row["cayley"]["b_ms"], rounds=rounds)
         out[f"orthonormal_{width}"] = row
         if width == widths[0]:
             ref_net = _square_net(width, 0)
@@ -230,6 +243,22 @@ def bench_orthonormal(rounds: int, widths: tuple[int, ...], steps_check: int = 2
             out["fast_vs_reference_orthonormal"] = compare(ours_step, _train_step(ref_net, ref, x, y),
                                                            rounds=rounds, warmup=1)
     return out
+
+
+def _orthonormal_floor(width: int, x: torch.Tensor, y: torch.Tensor, *, their_step_ms: float,
+                       rounds: int) -> dict[str, float]:
+    """The least our training step can cost against the cayley map: a RATTLE
+    step with the momentum stored in parameter coordinates needs four n x n
+    products (``X^T V``, ``A A``, ``X K``, ``X2 A2``), on top of the plain
+    training step (forward, backward, SGD on the same net without the
+    constraint).  Returns both times (ms) and ``(plain + 4 product) / cayley``."""
+    net = _square_net(width, 0)
+    sgd = torch.optim.SGD(net.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
+    a = torch.randn(1, width, width)
+    b = torch.randn(1, width, width)
+    cmp = compare(lambda: torch.bmm(a, b), _train_step(net, sgd, x, y), rounds=rounds, warmup=1)
+    product, plain = cmp["a_ms"], cmp["b_ms"]
+    return {"product_ms": product, "plain_step_ms": plain, "ratio": (plain + 4 * product) / their_step_ms}
 
 
 def bench_scaling(rounds: int, counts: tuple[float, ...]) -> dict[str, Any]:
@@ -346,12 +375,17 @@ def format_table(r: dict[str, Any]) -> str:
                   f"2c T>0 step vs unconstrained Langevin           [<=1.2]   "
                   f"{_fmt(r['hot_vs_plain_langevin_compiled'])}",
                   f"3c training step vs SGD, batch 128              [<=1.10]  "
-                  f"{_fmt(r['train_step_vs_sgd_compiled'])}"]
+                  f"{_fmt(r['train_step_vs_sgd_compiled'])}",
+                  f"  T=0 step on one 2048 x 2048 FixedNorm tensor vs SGD           "
+                  f"{_fmt(r['one_tensor_vs_sgd_compiled'])}"]
     for key, row in r.items():
         if key.startswith("orthonormal_"):
             for kind in ("cayley", "matrix_exp"):
                 lines.append(f"4 {key} training step vs torch {kind:<10} [<=0.5] {_fmt(row[kind])}  "
                              f"residual ours {row['our_residual']:.1e} theirs {row[kind]['their_residual']:.1e}")
+            f = row["floor"]
+            lines.append(f"  {key}: one n x n product {f['product_ms']:.1f} ms, plain SGD training step "
+                         f"{f['plain_step_ms']:.1f} ms; floor (plain + 4 products) / cayley = {f['ratio']:.2f}")
     if "scaling" in r:
         s = r["scaling"]
         lines.append(f"5 step time ~ params^k, {s['params'][0]/1e6:.2f}M..{s['params'][-1]/1e6:.2f}M  [<=1.05]  "
