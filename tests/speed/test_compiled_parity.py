@@ -60,6 +60,18 @@ def test_compiled_kernel_eager_matches_reference(eager_kernel, temperature, fric
     assert_same_run(net, opt, ref_net, ref)
 
 
+def test_compiled_kernel_eager_mixed_temperatures_match_reference(eager_kernel):
+    # group 0 hot, group 1 cold: only group 0 draws noise, in parameter order
+    net, opt, ref_net, ref = _pair(0.4, 1.0)
+    for o in (opt, ref):
+        o.param_groups[1]["temperature"] = 0.0
+    data = _data()
+    _run(net, opt, 10, data)
+    _run(ref_net, ref, 10, data)
+    assert len(eager_kernel) == 10
+    assert_same_run(net, opt, ref_net, ref)
+
+
 def test_compiled_path_steps_aside_for_what_it_does_not_cover(eager_kernel):
     # an Orthonormal parameter: the eager fast path takes the step, with the same result
     net, opt, ref_net, ref = _pair(0.2, 1.0)
