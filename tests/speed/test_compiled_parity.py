@@ -9,6 +9,8 @@ measured by ``python -m holonomic.bench``.
 
 import copy
 import math
+import os
+import shutil
 import warnings
 
 import pytest
@@ -116,6 +118,38 @@ def test_compiled_first_step_failure_leaves_no_momentum(eager_kernel):
     assert all("momentum" not in s for s in opt.state.values())  # no buffer left behind
 
 
+def test_compiled_path_is_skipped_when_force_is_overridden(eager_kernel):
+    # the kernel computes the force itself, so a custom force must take the eager path
+    class Clipped(hn.Langevin):
+        @staticmethod
+        def force(p, group):
+            return p.grad.clamp(-0.1, 0.1)
+
+    net = _net()
+    opt = Clipped(net.parameters(), step=0.1, compiled=True)
+    _run(net, opt, 2, _data())
+    assert not eager_kernel
+
+
+def test_error_inside_the_step_is_raised_with_nothing_changed(monkeypatch):
+    # an error that is not a failure to compile (here: after the noise was drawn)
+    def failing(*args):
+        raise MemoryError("out of memory")
+
+    monkeypatch.setattr(compiled_mod, "_compiled_kernel", lambda: failing)
+    net, opt, _, _ = _pair(0.3, 1.0)
+    data = _data()
+    x, y = data
+    opt.zero_grad()
+    ((net(x) - y) ** 2).mean().backward()
+    before = _snapshot(net, opt)
+    with pytest.raises(MemoryError):
+        opt.step()
+    _assert_unchanged(before, (net.state_dict(), opt.state_dict()))
+    assert not opt._generators  # the generator created for the noise was dropped again
+    assert not getattr(opt, "_compile_failed", False)  # not mistaken for a failure to compile
+
+
 def test_compiled_rejects_non_bool():
     with pytest.raises(ValueError, match="compiled"):
         hn.Langevin(nn.Linear(2, 2).parameters(), step=0.1, compiled="yes")
@@ -137,7 +171,11 @@ def test_compile_failure_warns_and_uses_eager_path(monkeypatch):
     assert_same_run(net, opt, ref_net, ref)
 
 
+_HAVE_CXX = any(shutil.which(c) for c in (os.environ.get("CXX", ""), "g++", "clang++") if c)
+
+
 @pytest.mark.slow
+@pytest.mark.skipif(not _HAVE_CXX, reason="torch.compile on CPU needs a C++ compiler (g++ or clang++)")
 def test_torch_compiled_step_matches_reference_float64():
     # the real torch.compile path (tens of seconds to compile on a small CPU)
     for temperature in (0.0, 0.4):

@@ -146,11 +146,13 @@ def bench_steps(rounds: int, compiled: bool = False) -> dict[str, Any]:
     out: dict[str, Any] = {}
     if compiled:
         out["compile_seconds"] = _first_call_seconds(ours.step)
+        _check_compiled(ours)
     out["t0_vs_sgd" + suffix] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
     hot = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, temperature=1e-4, compiled=compiled)
     plain = PlainLangevin(free.parameters(), hot.param_groups[0]["lr"], hot.param_groups[0]["friction"], 1e-4)
     if compiled:
         out["compile_seconds_hot"] = _first_call_seconds(hot.step)
+        _check_compiled(hot)
     out["hot_vs_plain_langevin" + suffix] = compare(hot.step, plain.step, rounds=rounds, calls=3)
     if not compiled:
         ref = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM)
@@ -172,8 +174,12 @@ def bench_training(rounds: int, batch: int = 128, compiled: bool = False) -> dic
     con, free = constrain_rows(mlp(SHAPE)), mlp(SHAPE)
     ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, compiled=compiled)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
+    step = _train_step(con, ours, x, y)
+    if compiled:
+        step()
+        _check_compiled(ours)
     key = "train_step_vs_sgd" + ("_compiled" if compiled else "")
-    return {key: compare(_train_step(con, ours, x, y), _train_step(free, sgd, x, y), rounds=rounds, calls=2)}
+    return {key: compare(step, _train_step(free, sgd, x, y), rounds=rounds, calls=2)}
 
 
 def bench_compiled(rounds: int) -> dict[str, Any]:
@@ -188,8 +194,17 @@ def bench_compiled(rounds: int) -> dict[str, Any]:
     fake_grads(free)
     ours = hn.Langevin.from_sgd(layer.parameters(), lr=LR, momentum=MOMENTUM, compiled=True)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
+    out["compile_seconds_one_tensor"] = _first_call_seconds(ours.step)
+    _check_compiled(ours)
     out["one_tensor_vs_sgd_compiled"] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
     return out
+
+
+def _check_compiled(opt: hn.Langevin) -> None:
+    """The compiled rows mean nothing if the step fell back to the eager path."""
+    if getattr(opt, "_compile_failed", False):
+        raise RuntimeError("Langevin(compiled=True) could not compile here (see the warning above); "
+                           "run the suite with --only steps training orthonormal scaling memory")
 
 
 def _train_step(model: nn.Module, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor) -> Step:
@@ -370,7 +385,8 @@ def format_table(r: dict[str, Any]) -> str:
         lines.append(f"3 training step vs SGD, batch 128               [<=1.10]  {_fmt(r['train_step_vs_sgd'])}")
     if "t0_vs_sgd_compiled" in r:
         lines += [f"  Langevin(compiled=True); first step (compiling) {r['compile_seconds']:.0f} s at T=0, "
-                  f"{r['compile_seconds_hot']:.0f} s at T>0:",
+                  f"{r['compile_seconds_hot']:.0f} s at T>0, "
+                  f"{r.get('compile_seconds_one_tensor', float('nan')):.0f} s for the single tensor:",
                   f"1c T=0 step vs SGD(momentum, foreach)           [<=1.5]   {_fmt(r['t0_vs_sgd_compiled'])}",
                   f"2c T>0 step vs unconstrained Langevin           [<=1.2]   "
                   f"{_fmt(r['hot_vs_plain_langevin_compiled'])}",

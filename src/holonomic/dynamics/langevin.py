@@ -101,9 +101,10 @@ class Langevin(ConstrainedOptimizer):
             one ``torch.compile`` function (same arithmetic, about half the
             memory traffic of the eager step; see
             :mod:`holonomic.dynamics.compiled`).  The first step compiles
-            (tens of seconds on a small CPU) and needs a C++ compiler; steps
-            the compiled function does not cover, and any failure to compile
-            (with a warning), use the eager path.
+            (tens of seconds on a small CPU) and needs a C++ compiler.  A
+            step with any parameter it does not cover (orthonormal, geodesic
+            or substepped groups, ...) runs eagerly as a whole, and so does
+            every step after a failure to compile (with a warning).
 
     Raises:
         ValueError: at construction, for a non-positive or NaN step,
@@ -189,10 +190,16 @@ class Langevin(ConstrainedOptimizer):
         the plain path when a check fails."""
         if self._reference or self.scheme is not BAOAB or type(self)._update is not Langevin._update:
             self._reference_step()
-        elif getattr(self, "compiled", False) and compiled_baoab_step(self):
+        elif self._use_compiled() and compiled_baoab_step(self):
             return
         elif not fast_baoab_step(self):
             self._reference_step()
+
+    def _use_compiled(self) -> bool:
+        """Asked for, not failed to compile, and ``force`` not overridden (the
+        compiled kernel computes the force itself)."""
+        return (getattr(self, "compiled", False) and not self.__dict__.get("_compile_failed", False)
+                and type(self).force is ConstrainedOptimizer.force)
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
         state = self.state[p]
