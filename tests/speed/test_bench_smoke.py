@@ -1,0 +1,35 @@
+"""Smoke test of the benchmark command (``python -m holonomic.bench``): it
+runs and writes well-formed results.  No timing assertions: the figures are
+ratios on a noisy machine and belong in the README, not in a test."""
+
+import json
+import math
+
+import pytest
+
+from holonomic.bench.suite import compare, format_table, main
+
+
+def test_compare_reports_interleaved_ratios():
+    calls = []
+    out = compare(lambda: calls.append("a"), lambda: calls.append("b"), rounds=4, calls=2, warmup=1)
+    assert calls[:2] == ["a", "b"]  # warm-up
+    assert calls[2:6] == ["a", "a", "b", "b"] and calls[6:10] == ["b", "b", "a", "a"]  # rounds alternate
+    assert out["rounds"] == 4 and out["q1"] <= out["ratio"] <= out["q3"]
+    assert all(math.isfinite(out[k]) and out[k] > 0 for k in ("ratio", "a_ms", "b_ms"))
+
+
+@pytest.mark.slow
+def test_bench_command_writes_results(tmp_path, capsys):
+    path = tmp_path / "bench.json"
+    assert main(["--quick", "--only", "steps", "memory", "--json", str(path), "--threads", "1"]) == 0
+    result = json.loads(path.read_text())
+    assert result["threads"] == 1 and result["dtype"] == "float32"
+    for key in ("t0_vs_sgd", "hot_vs_plain_langevin", "t0_fast_vs_reference"):
+        assert math.isfinite(result[key]["ratio"]) and result[key]["ratio"] > 0
+    memory = result["memory"]
+    # one float32 momentum buffer per parameter, as torch.optim.SGD(momentum=...) keeps
+    assert memory["holonomic"]["state_bytes_per_param"] == pytest.approx(4.0)
+    assert memory["sgd"]["state_bytes_per_param"] == pytest.approx(4.0)
+    printed = capsys.readouterr().out
+    assert "1 T=0 step vs SGD" in printed and format_table(result) in printed
