@@ -19,6 +19,7 @@ import holonomic as hn
 from holonomic.dynamics.fast_orthonormal import (
     _block_size,
     _combined_series,
+    _drift_factor,
     matrix_series,
     series_degree,
     sqrt_series,
@@ -155,3 +156,28 @@ def test_square_fast_path_float32_stays_on_the_set_and_near_reference():
     assert hn.residuals(nets[0])["weight"] <= default_tolerance(torch.float32)
     # same noise, same dynamics: float32 roundoff grows slowly along the trajectory (common practice, no source)
     assert (nets[0].weight - nets[1].weight).abs().max() < 1e-4
+
+
+def test_cut_odd_series_moves_the_drift_factor_off_the_group_only_at_second_order():
+    # The T = 0 drift factor K = E(Z) + A O(Z) with the odd series O cut early: the error
+    # delta = K_full - K_cut is skew, so K_cut^T K_cut - I = -(K-I)^T delta - delta^T (K-I)
+    # + delta^T delta is of size 2 ||K - I|| ||delta|| (K - I ~ (1 + d) A), far below ||delta||
+    # for the small A of training (the reason the odd series gets a looser budget).
+    g = torch.Generator().manual_seed(7)
+    b = torch.randn(1, 8, 8, generator=g, dtype=torch.float64)
+    a = 0.004 * (b - b.transpose(-1, -2))  # ||A||_2 about 0.03
+    z = a @ a
+    e, o = _combined_series(0.9)
+    full = _drift_factor(e, o, z, a, 20, 20)
+    cut = _drift_factor(e, o, z, a, 20, 0)
+    eye = torch.eye(8, dtype=torch.float64)
+    assert torch.linalg.matrix_norm(full[0].T @ full[0] - eye, ord=2) < 1e-14  # full: orthogonal
+    delta = full[0] - cut[0]
+    size = float(torch.linalg.matrix_norm(delta, ord=2))
+    assert size > 1e-6  # the cut is visible, so the checks below can fail
+    assert torch.allclose(delta, -delta.T, rtol=0, atol=1e-15)  # float64 roundoff of entries near 1
+    norm_a = float(torch.linalg.matrix_norm(a[0], ord=2))
+    err = float(torch.linalg.matrix_norm(cut[0].T @ cut[0] - eye, ord=2))
+    k_minus_i = float(torch.linalg.matrix_norm(full[0] - eye, ord=2))
+    assert err <= 2 * k_minus_i * size + size**2 + 1e-15
+    assert norm_a < 0.05 and err < 0.2 * size

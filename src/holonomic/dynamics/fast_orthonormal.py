@@ -46,11 +46,22 @@ drifts are series in the same ``Z``: ``K1 K2 = E(Z) + s Omega O(Z)`` with
 those of the series (none beyond ``Z`` itself while ``||Z||`` is tiny, as in
 training).
 
-**Truncation, existence, failure.**  ``zeta = max_i sum_j |Z_ij|`` bounds
-``||Z||_2`` (``Z`` is symmetric).  The series are cut at the smallest
+**Truncation, existence, failure.**  ``zeta = ||Z||_F`` bounds ``||Z||_2``
+(loosely: for a random skew ``A`` of size n, by a factor of about
+``sqrt(n) / 3``).  The series are cut at the smallest
 degree whose tail bound ``sum_{j > m} |c_j| zeta^j`` is below a quarter of
 the constraint's tolerance (set by the dtype, as for the iterative SHAKE);
-the degree is reported as the projection iteration count.  Reading
+the degree is reported as the projection iteration count.  At ``T = 0`` the odd
+series ``O`` gets a looser budget, half the tolerance: its truncation error
+``delta = A (O - O_m)(Z)`` is an odd function of the skew ``A`` and so skew
+itself, and a skew error moves ``K`` off the orthogonal group only at second
+order (``K^T K - I = -(K - I)^T delta - delta^T (K - I) + delta^T delta``,
+of size ``2 ||K - I|| ||delta||``, about ``4 ||A|| ||delta||``, and
+``||A||_2 <= sqrt(zeta)`` was about ``6e-3`` in the benchmark's training), so it
+changes where the step lands by at most
+half the tolerance (the plain path's SHAKE iteration stops within about the
+same distance of the exact root) without loosening the constraint.  At the
+benchmark's width 1024 this drops the cubic term and one n x n product.  Reading
 ``zeta`` is one host synchronisation per drift (one per step at ``T = 0``).
 When ``zeta > 1/4`` (``s ||Omega||_2`` may exceed ``1/2``), when no degree
 up to ``MAX_DEGREE`` suffices, or when a value is not finite, the fast path
@@ -88,6 +99,8 @@ __all__ = [
 MAX_DEGREE = 24
 _TERMS = 48  # coefficients kept for tail bounds (zeta <= 1/4: 4^-48 is negligible)
 _ZETA_MAX = 0.25
+#: Tail budget of the odd series at T = 0, as a fraction of the tolerance (module docstring).
+_ODD_BUDGET = 0.5
 
 
 @lru_cache(maxsize=None)
@@ -244,7 +257,9 @@ def square_orthonormal_baoab(
     if noise is None:
         e, o = _combined_series(decay)
         m_e = series_degree(e, zeta, 0.5 * target)
-        m_o = series_degree(o, zeta, 0.5 * target, weight=math.sqrt(zeta))
+        # the odd part's truncation error is skew: it moves K off O(n) only at second order
+        # (module docstring), so it gets the looser budget of a trajectory error
+        m_o = series_degree(o, zeta, _ODD_BUDGET * tolerance, weight=math.sqrt(zeta))
         if m_e is None or m_o is None:
             return None
         w2 = torch.bmm(w, _drift_factor(e, o, z, a, m_e, m_o))
