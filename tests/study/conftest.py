@@ -6,6 +6,7 @@ import pytest
 
 from holonomic.study import parse_config
 from holonomic.study.demo import tomllib
+from holonomic.study.runner import _execute, run_all
 
 #: The demo study shrunk to seconds: 2 seeds, 2 grid points, 3 epochs, 64 training rows.
 TINY_TOML = """
@@ -68,3 +69,31 @@ def _single_thread():
     torch.set_num_threads(1)
     yield
     torch.set_num_threads(threads)
+
+
+def interrupt_after(config, out_dir, n: int) -> list[str]:
+    """Run the study's runs into ``out_dir`` and interrupt (as Ctrl-C would)
+    once ``n`` have finished; returns the keys of the finished runs."""
+    calls: list[str] = []
+
+    def interrupted(cfg, spec, out):
+        if len(calls) == n:
+            raise KeyboardInterrupt
+        calls.append(spec.key)
+        return _execute(cfg, spec, out)
+
+    with pytest.raises(KeyboardInterrupt):
+        run_all(config, out_dir, progress=False, execute=interrupted)
+    return calls
+
+
+def counting_execute():
+    """An ``execute`` for ``run_all`` that records the key of every run it trains,
+    and the list it records into."""
+    trained: list[str] = []
+
+    def counting(cfg, spec, out):
+        trained.append(spec.key)
+        return _execute(cfg, spec, out)
+
+    return trained, counting

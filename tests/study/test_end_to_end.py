@@ -16,7 +16,8 @@ import pytest
 
 from holonomic.cli import main
 from holonomic.study import StudyConfigError, parse_config, run_study
-from holonomic.study.runner import _execute, plan_runs, run_all
+from holonomic.study.runner import plan_runs, run_all
+from tests.study.conftest import counting_execute, interrupt_after
 
 OUTPUTS = ("results.csv", "summary.json", "report.md", "gap_vs_strength.png",
            "learning_curves.png", "weights.png")
@@ -75,26 +76,12 @@ def test_same_study_twice_identical_and_resume_matches(tmp_path, tiny_config, ti
     assert (second / "results.csv").read_text() == reference
 
     resumed = tmp_path / "resumed"
-    calls = []
-
-    def interrupted(config, spec, out_dir):
-        if len(calls) == 5:
-            raise KeyboardInterrupt
-        calls.append(spec.key)
-        return _execute(config, spec, out_dir)
-
-    with pytest.raises(KeyboardInterrupt):
-        run_all(tiny_config, resumed, progress=False, execute=interrupted)
+    calls = interrupt_after(tiny_config, resumed, 5)
     assert sorted(p.stem for p in (resumed / "runs").iterdir()) == sorted(calls)
     # a temporary left by a process killed mid-write (pid 2**22 + 1 is not running)
     stale = resumed / "runs" / f".{calls[0]}.json.{2 ** 22 + 1}.tmp"
     stale.write_text("{half a rec")
-    trained = []
-
-    def counting(config, spec, out_dir):
-        trained.append(spec.key)
-        return _execute(config, spec, out_dir)
-
+    trained, counting = counting_execute()
     records = run_all(tiny_config, resumed, progress=False, execute=counting)
     assert not stale.exists()
     assert len(trained) == len(plan_runs(tiny_config)) - 5 and not set(trained) & set(calls)

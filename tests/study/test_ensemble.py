@@ -13,9 +13,9 @@ from scipy import stats
 
 from holonomic.study import StudyConfigError, parse_config, run_study
 from holonomic.study.ensemble import ENSEMBLE_METRICS, TRACED
-from holonomic.study.runner import _execute, plan_runs, run_all
+from holonomic.study.runner import plan_runs, run_all
 
-from tests.study.conftest import tiny_document
+from tests.study.conftest import counting_execute, interrupt_after, tiny_document
 
 ENSEMBLE = {"temperature": 1.0, "samples": 6, "every": 2, "burn_in": 3}
 ENSEMBLE_ARMS = ("weight_decay", "fixed_norm")
@@ -145,22 +145,8 @@ def test_resume_is_unaffected_and_changed_ensemble_is_refused(finished, tmp_path
     reference, _ = finished
     config = parse_config(_doc())
     resumed = tmp_path / "resumed"
-    calls: list[str] = []
-
-    def interrupted(cfg, spec, out_dir):
-        if len(calls) == 5:
-            raise KeyboardInterrupt
-        calls.append(spec.key)
-        return _execute(cfg, spec, out_dir)
-
-    with pytest.raises(KeyboardInterrupt):
-        run_all(config, resumed, progress=False, execute=interrupted)
-    trained: list[str] = []
-
-    def counting(cfg, spec, out_dir):
-        trained.append(spec.key)
-        return _execute(cfg, spec, out_dir)
-
+    calls = interrupt_after(config, resumed, 5)
+    trained, counting = counting_execute()
     run_all(config, resumed, progress=False, execute=counting)
     assert len(trained) == len(plan_runs(config)) - 5 and not set(trained) & set(calls)
     run_study(config, resumed, progress=False, plots=False)
