@@ -47,7 +47,6 @@ plain reference path in float64.
 
 from __future__ import annotations
 
-import math
 import warnings
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
@@ -55,8 +54,16 @@ import torch
 from torch import Tensor
 
 from holonomic.dynamics.base import ParameterStepInfo, StepInfo, step_label
-from holonomic.dynamics.fast import _abandon, _noise, _vectors, sphere_baoab_coefficients
-from holonomic.geometry import UNCONSTRAINED, FixedNorm, Unconstrained, constraint_of
+from holonomic.dynamics.fast import (
+    _abandon,
+    _fast_eligible,
+    _noise,
+    _vectors,
+    scratch_buffer,
+    sphere_baoab_coefficients,
+)
+from holonomic.dynamics.operators import ou_coefficients
+from holonomic.geometry import UNCONSTRAINED, FixedNorm, Orthonormal, constraint_of
 
 if TYPE_CHECKING:  # pragma: no cover
     from holonomic.dynamics.langevin import Langevin
@@ -241,9 +248,7 @@ def _arguments(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tup
     noisy = any(group["temperature"] > 0 for _, _, group, _ in items)
     for p, geometry, group, _ in items:
         h = group["lr"]
-        gh = group["friction"] * h
-        decay = math.exp(-gh)
-        sigma = math.sqrt(group["temperature"] * -math.expm1(-2.0 * gh)) if group["temperature"] > 0 else 0.0
+        decay, sigma = ou_coefficients(group["friction"], h, group["temperature"])
         momentum = opt.state[p].get("momentum")
         if momentum is None:
             momentum = fresh[p] = torch.zeros_like(p, memory_format=torch.contiguous_format)
@@ -259,7 +264,8 @@ def _arguments(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tup
         ms.append(view(momentum))
         gs.append(view(p.grad))
         if noisy:
-            xs.append(view(_noise(opt, p) if group["temperature"] > 0 else _zeros(opt, p)))
+            # a cold parameter in a step where others are hot reads zeros (never written)
+            xs.append(view(_noise(opt, p) if group["temperature"] > 0 else scratch_buffer(opt, "zeros", p, 0.0)))
         scale = group["dataset_size"] if group["dataset_size"] is not None else 1.0
         rows.append((h, decay, sigma, scale, group["weight_decay"], r2))
     return ws, ms, gs, xs, tuple(kinds), _scalar_table(opt, rows, ws[0])
@@ -278,15 +284,6 @@ def _scalar_table(opt: "Langevin", rows: list[tuple[float, ...]], like: Tensor) 
     return cached[1]
 
 
-def _zeros(opt: "Langevin", p: Tensor) -> Tensor:
-    """A zero 'noise' buffer for a cold parameter in a step where others are hot."""
-    buffers = opt.__dict__.setdefault("_zero_buffers", {})
-    buf = buffers.get(p)
-    if buf is None or buf.shape != p.shape or buf.dtype != p.dtype or buf.device != p.device:
-        buf = buffers[p] = torch.zeros_like(p, memory_format=torch.contiguous_format)
-    return buf
-
-
 def _rows(t: Tensor, over: str) -> Tensor:
     """2-D view of ``t`` with one constrained vector per row."""
     m, dim = _vectors(t, over)
@@ -300,24 +297,18 @@ def _collect(opt: "Langevin") -> list[tuple[Tensor, Any, dict[str, Any], tuple[i
     seen: set[int] = set()
     dtypes, devices = set(), set()
     for g_index, group in enumerate(opt.param_groups):
-        if group["projection"] != "rattle" or group["substeps"] != 1 or not group["lr"] > 0:
+        if not group["lr"] > 0:
             return None
         for index, p in enumerate(group["params"]):
             if p.grad is None:
                 continue
-            grad = p.grad
-            if grad.is_sparse or not (p.is_floating_point() and p.is_contiguous() and grad.is_contiguous()):
-                return None
-            if grad.dtype != p.dtype:
-                return None
-            momentum = opt.state[p].get("momentum")
-            if momentum is not None and not (momentum.is_contiguous() and momentum.dtype == p.dtype):
-                return None
             if id(p) in seen:  # listed twice: the second update would see the first's writes
                 return None
             seen.add(id(p))
             geometry = constraint_of(p) or UNCONSTRAINED
-            if not (isinstance(geometry, Unconstrained) or (isinstance(geometry, FixedNorm) and p.dim() >= 1)):
+            # the eager fast path's conditions, less the square orthonormal case it adds
+            if p.grad.is_sparse or isinstance(geometry, Orthonormal) or not _fast_eligible(
+                    p, geometry, group, opt.state[p]):
                 return None
             dtypes.add(p.dtype)
             devices.add(p.device)

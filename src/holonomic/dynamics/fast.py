@@ -54,7 +54,6 @@ abandoned step leaves nothing behind but scratch values.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Callable
 
@@ -63,6 +62,7 @@ from torch import Tensor
 
 from holonomic.dynamics.base import ParameterStepInfo, Pending, StepInfo, step_label
 from holonomic.dynamics.fast_orthonormal import square_orthonormal_baoab
+from holonomic.dynamics.operators import ou_coefficients
 from holonomic.geometry import UNCONSTRAINED, FixedNorm, Orthonormal, Unconstrained, constraint_of
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -195,14 +195,23 @@ def _square(p: Tensor) -> bool:
     return p.dim() >= 2 and p.shape[0] == p[0].numel()
 
 
-def _noise(opt: "Langevin", p: Tensor) -> Tensor:
-    """Gaussian noise of ``p``'s shape from the integrator's generator, drawn
-    into the parameter's buffer (same values as ``torch.randn``)."""
-    buffers = opt.__dict__.setdefault("_noise_buffers", {})
+def scratch_buffer(opt: "Langevin", kind: str, p: Tensor, fill: float | None = None) -> Tensor:
+    """A contiguous buffer like ``p`` that the optimizer keeps outside its state
+    (not checkpointed), one per ``kind`` and parameter; ``fill`` initialises a
+    newly allocated one."""
+    buffers = opt.__dict__.setdefault("_scratch_buffers", {}).setdefault(kind, {})
     buf = buffers.get(p)
     if buf is None or buf.shape != p.shape or buf.dtype != p.dtype or buf.device != p.device:
         buf = buffers[p] = torch.empty_like(p, memory_format=torch.contiguous_format)
-    return buf.normal_(generator=opt.generator(p.device))
+        if fill is not None:
+            buf.fill_(fill)
+    return buf
+
+
+def _noise(opt: "Langevin", p: Tensor) -> Tensor:
+    """Gaussian noise of ``p``'s shape from the integrator's generator, drawn
+    into the parameter's buffer (same values as ``torch.randn``)."""
+    return scratch_buffer(opt, "noise", p).normal_(generator=opt.generator(p.device))
 
 
 def fast_baoab_step(opt: "Langevin") -> bool:
@@ -220,9 +229,7 @@ def fast_baoab_step(opt: "Langevin") -> bool:
                 continue
             return _abandon(opt, saved)  # the plain path raises the documented error
         temperature = group["temperature"]
-        gh = group["friction"] * h
-        decay = math.exp(-gh)
-        sigma = math.sqrt(temperature * -math.expm1(-2.0 * gh)) if temperature > 0 else 0.0
+        decay, sigma = ou_coefficients(group["friction"], h, temperature)
         names = group.get("param_names")
         spheres: list[tuple[_Entry, Tensor, Tensor, Tensor | None, dict[str, Tensor], Tensor, str]] = []
         free: list[tuple[_Entry, Tensor, Tensor, Tensor, Tensor | None]] = []

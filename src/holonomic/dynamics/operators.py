@@ -47,6 +47,7 @@ __all__ = [
     "run_scheme",
     "BAOAB",
     "overdamped_move",
+    "ou_coefficients",
 ]
 
 
@@ -97,15 +98,22 @@ def drift(phase: Phase, fraction: float, *, force: Tensor, geometry: Constraint,
         phase.iterations = max(phase.iterations, result.iterations)
 
 
+def ou_coefficients(friction: float, duration: float, temperature: float) -> tuple[float, float]:
+    r"""``(e^{-gamma t}, sqrt(T (1 - e^{-2 gamma t})))``: the decay and noise scale
+    of the exact Ornstein-Uhlenbeck step ``p <- decay p + scale xi`` over time ``t``
+    (the noise scale is 0 at ``T = 0``)."""
+    gh = friction * duration
+    scale = math.sqrt(temperature * -math.expm1(-2.0 * gh)) if temperature > 0 else 0.0
+    return math.exp(-gh), scale
+
+
 def thermostat(phase: Phase, fraction: float, *, force: Tensor, geometry: Constraint,
                settings: Settings, generator: torch.Generator | None) -> None:
     """O: exact Ornstein-Uhlenbeck update of the tangent momentum."""
-    gh = settings.friction * fraction * settings.step
-    decay = math.exp(-gh)
+    decay, scale = ou_coefficients(settings.friction, fraction * settings.step, settings.temperature)
     if settings.temperature == 0.0:
         phase.p = phase.p * decay
         return
-    scale = math.sqrt(settings.temperature * -math.expm1(-2.0 * gh))
     noise = torch.randn(phase.p.shape, generator=generator, dtype=phase.p.dtype, device=phase.p.device)
     phase.p = geometry.tangent(phase.w, phase.p * decay + scale * noise)
 
