@@ -137,10 +137,11 @@ def test_fast_path_failure_changes_nothing_and_reports_like_reference():
     _assert_unchanged(before, (net.state_dict(), opt.state_dict()))
 
 
-def test_fast_path_projection_failure_changes_nothing():
+def check_unprojectable_first_step_changes_nothing(**kwargs):
+    """A first step SHAKE cannot take raises and changes nothing; returns the optimizer."""
     layer = nn.Linear(4, 3).double()
     hn.constrain(layer, weight=hn.FixedNorm(1.0))
-    opt = hn.Langevin(layer.parameters(), step=1.0, temperature=0.0)
+    opt = hn.Langevin(layer.parameters(), step=1.0, temperature=0.0, **kwargs)
     layer.weight.grad = torch.full_like(layer.weight, 50.0)  # s |p| >> r: SHAKE has no real root
     layer.bias.grad = torch.zeros_like(layer.bias)
     before = _snapshot(layer, opt)
@@ -148,3 +149,8 @@ def test_fast_path_projection_failure_changes_nothing():
         opt.step()
     assert err.value.reason == "projection failed"
     _assert_unchanged(before, (layer.state_dict(), opt.state_dict()))
+    return opt
+
+
+def test_fast_path_projection_failure_changes_nothing():
+    check_unprojectable_first_step_changes_nothing()
