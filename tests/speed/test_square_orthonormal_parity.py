@@ -16,6 +16,7 @@ import torch
 from torch import nn
 
 import holonomic as hn
+import holonomic.dynamics.fast_orthonormal as fo
 from holonomic.dynamics.fast_orthonormal import (
     _block_size,
     _combined_series,
@@ -181,3 +182,49 @@ def test_cut_odd_series_moves_the_drift_factor_off_the_group_only_at_second_orde
     k_minus_i = float(torch.linalg.matrix_norm(full[0] - eye, ord=2))
     assert err <= 2 * k_minus_i * size + size**2 + 1e-15
     assert norm_a < 0.05 and err < 0.2 * size
+
+
+def test_cold_step_from_three_products_against_closed_form_rattle(monkeypatch):
+    # T = 0: W2 = W K1 K2 with K1 = sqrt(I + A^2) + A, K2 = sqrt(I + d^2 A^2) + d A (two RATTLE
+    # drifts in closed form, module docstring; square roots by scipy.linalg.sqrtm as the outside
+    # reference) and P2 = d W2 A / s.  The fast step forms only W^T V, W A, W A^2 and leaves out
+    # the momentum's A^3 term when its bound is below half the tolerance.
+    n, scale, s, d, tol = 8, 0.8, 0.05, 0.9, 1e-8
+    g = torch.Generator().manual_seed(11)
+    x, _ = torch.linalg.qr(torch.randn(n, n, generator=g, dtype=torch.float64))
+    w = (scale * x)[None]
+    v = torch.randn(1, n, n, generator=g, dtype=torch.float64)
+    a = fo._scaled_skew(w, v, 0.5 * s / scale**2)
+    v = v * math.sqrt(1e-6 / float(torch.linalg.matrix_norm(a[0] @ a[0])))  # zeta = ||Z||_F = 1e-6
+    a = fo._scaled_skew(w, v, 0.5 * s / scale**2)[0]
+    eye = torch.eye(n, dtype=torch.float64)
+    k1 = torch.from_numpy(scipy.linalg.sqrtm((eye + a @ a).numpy()).real) + a
+    k2 = torch.from_numpy(scipy.linalg.sqrtm((eye + d * d * a @ a).numpy()).real) + d * a
+    w2_exact = w[0] @ k1 @ k2
+    p2_exact = d * w2_exact @ a / s
+
+    calls = []
+    real_bmm = torch.bmm
+    monkeypatch.setattr(torch, "bmm", lambda *args: calls.append(1) or real_bmm(*args))
+    w2, p2, kinetic, ok, degree = fo.square_orthonormal_baoab(
+        w, v, None, scale=scale, step=2 * s, decay=d, sigma=0.0, tolerance=tol)
+    monkeypatch.undo()
+    assert bool(ok) and len(calls) == 2  # U_1 and U_2; W^T V is the one baddbmm
+    w2, p2 = w2[0], p2[0]
+    # position: even tail (an eighth of tol) plus odd tail (half of tol), unit frame
+    assert float(torch.linalg.matrix_norm(w2 - w2_exact, 2)) / scale <= 0.625 * tol
+    x2 = w2 / scale
+    assert float(torch.linalg.matrix_norm(x2.T @ x2 - eye, 2)) <= 0.25 * tol
+    # momentum, as the next drift's displacement s P / scale: within its budget, and the cut is
+    # visible (so this check can fail); momentum_tail is the bound the step used
+    err = float(torch.linalg.matrix_norm(s * (p2 - p2_exact), 2)) / scale
+    assert 1e-3 * tol < err <= fo.momentum_tail(d, 1e-6, 2) <= 0.5 * tol
+    # its normal part is of order zeta^2 (module docstring)
+    m = x2.T @ (s * p2 / scale)
+    assert float(torch.linalg.matrix_norm(m + m.T, 2)) <= 10 * 1e-12
+    assert torch.allclose(kinetic[0], 0.5 * (p2 * p2).sum(), rtol=1e-14, atol=0)
+    # a step that cut one term more (the U_2 term of the momentum) fails the budget
+    e, o = fo._combined_series(d)
+    u1 = w[0] @ a
+    cut_more = d / s * e[0] * u1
+    assert float(torch.linalg.matrix_norm(s * (cut_more - p2_exact), 2)) / scale > 10 * tol

@@ -42,9 +42,29 @@ The drift's input is the tangent momentum *after* the kick (first A) or
 the thermostat (second A).  At ``T = 0``, ``Omega2 = d Omega1``, so both
 drifts are series in the same ``Z``: ``K1 K2 = E(Z) + s Omega O(Z)`` with
 ``E(z) = r(z) r(d^2 z) + d z`` and ``O(z) = d r(z) + r(d^2 z)``,
-``r(z) = sqrt(1 + z)``, and the whole step costs five matrix products plus
-those of the series (none beyond ``Z`` itself while ``||Z||`` is tiny, as in
-training).
+``r(z) = sqrt(1 + z)``.
+
+**T = 0 from the products ``U_k = W A^k``.**  With ``A = s Omega1``,
+``K = sum_k kappa_k A^k`` (``kappa_{2j} = e_j``, ``kappa_{2j+1} = o_j``), so::
+
+    W2 = sum_{k <= N} kappa_k U_k,     s P2 = d W2 A = d sum_{k <= N} kappa_k U_{k+1}
+
+and ``U_{k+1} = U_k A`` is one n x n product.  For the small ``A`` of
+training ``N = 2`` suffices, and the step costs three products (``W^T V``,
+``U_1``, ``U_2``) instead of four (``W^T V``, ``Z = A A``, ``W K`` and
+``W2 A``; five when ``O`` needs its linear term).  ``zeta`` is read from ``||U_2||_F = scale ||Z||_F``.  The
+momentum's last term ``d kappa_N U_{N+1}`` would cost a fourth product; it
+is left out when the bound of everything it and the higher powers add,
+``d sum_{k >= N} |kappa_k| zeta^{(k+1)/2}``, is below half the tolerance
+(:func:`momentum_tail`; in the unit frame, ``s P2`` is the next drift's
+displacement, so this is a trajectory error of the same budget as the odd
+series below).  The stored momentum then differs from RATTLE's ``X2
+Omega2`` by that much; its normal part (the symmetric part of ``X2^T (s
+P2)``, from the even powers of ``K^T A^{N+1}``) is of order
+``zeta^{(N+2)/2}`` (``zeta^2`` at ``N = 2``), far below the tolerance, and the next kick
+projects onto the tangent space anyway.  Beyond ``N = 4`` (large ``zeta``:
+early in training or at large steps) the step forms ``Z`` and uses the
+series in ``Z`` (Paterson-Stockmeyer), as the ``T > 0`` step always does.
 
 **Truncation, existence, failure.**  ``zeta = ||Z||_F`` bounds ``||Z||_2``
 (loosely: for a random skew ``A`` of size n, by a factor of about
@@ -61,8 +81,10 @@ of size ``2 ||K - I|| ||delta||``, about ``4 ||A|| ||delta||``, and
 changes where the step lands by at most
 half the tolerance (the plain path's SHAKE iteration stops within about the
 same distance of the exact root) without loosening the constraint.  At the
-benchmark's width 1024 this drops the cubic term and one n x n product.  Reading
-``zeta`` is one host synchronisation per drift (one per step at ``T = 0``).
+benchmark's width 1024 this drops the cubic term (one more product).  Reading
+``zeta`` is one host synchronisation per drift; at ``T = 0`` the drift check
+below is read first, in a synchronisation of its own, because ``U_k`` are
+formed from the corrected ``W``.
 When ``zeta > 1/4`` (``s ||Omega||_2`` may exceed ``1/2``), when no degree
 up to ``MAX_DEGREE`` suffices, or when a value is not finite, the fast path
 is abandoned (nothing changed) and the plain path takes the step or raises
@@ -101,6 +123,10 @@ _TERMS = 48  # coefficients kept for tail bounds (zeta <= 1/4: 4^-48 is negligib
 _ZETA_MAX = 0.25
 #: Tail budget of the odd series at T = 0, as a fraction of the tolerance (module docstring).
 _ODD_BUDGET = 0.5
+#: Tail budget of the momentum at T = 0, as a fraction of the tolerance (module docstring).
+_MOMENTUM_BUDGET = 0.5
+#: Highest power of A that the T = 0 step reaches by products W A^k (module docstring).
+_PRODUCTS_MAX = 4
 
 
 @lru_cache(maxsize=None)
@@ -240,50 +266,104 @@ def square_orthonormal_baoab(
     """
     s = 0.5 * step
     scale2 = scale * scale
+    if noise is None:
+        return _cold_step(w, v, scale=scale, s=s, decay=decay, tolerance=tolerance)
+    target = 0.25 * tolerance
     a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
     z = torch.bmm(a, a)  # Z = s^2 Omega^2
-    target = 0.25 * tolerance
     zeta, drift = (float(t) for t in torch.stack([_zeta(z), _drift_error(w, scale2)]).cpu())  # one sync
-    if not (math.isfinite(zeta) and math.isfinite(drift)):
+    if not math.isfinite(zeta):
         return None
-    if drift > math.sqrt(0.125 * tolerance):
-        # too far off the set for one Newton-Schulz step to reach roundoff (e.g.
-        # a weight projected in float32 and then cast to float64): plain path
+    w = _correct_drift(w, drift, scale2, tolerance)
+    if w is None:
         return None
-    if drift > 0.125 * tolerance:  # roundoff drift: one Newton-Schulz step along the normal at X
-        g = torch.bmm(w.transpose(-1, -2), w).mul_(-0.5 / scale2)
-        g.diagonal(dim1=-2, dim2=-1).add_(1.5)
-        w = torch.bmm(w, g)
-    if noise is None:
-        e, o = _combined_series(decay)
-        m_e = series_degree(e, zeta, 0.5 * target)
-        # the odd part's truncation error is skew: it moves K off O(n) only at second order
-        # (module docstring), so it gets the looser budget of a trajectory error
-        m_o = series_degree(o, zeta, _ODD_BUDGET * tolerance, weight=math.sqrt(zeta))
-        if m_e is None or m_o is None:
-            return None
-        w2 = torch.bmm(w, _drift_factor(e, o, z, a, m_e, m_o))
-        a2 = a
-        p_alpha = decay / s
-        degree = max(m_e, m_o, 1)
-    else:
-        r = sqrt_series()
-        m1 = series_degree(r, zeta, target)
-        if m1 is None:
-            return None
-        w1 = torch.bmm(w, _drift_factor(r, (1.0,), z, a, m1, 0))
-        a2 = _scaled_skew(w1, noise, 0.5 * s * sigma / scale2).add_(a, alpha=decay)
-        z2 = torch.bmm(a2, a2)
-        zeta2 = float(_zeta(z2))  # the second drift has its own degree (one more sync)
-        m2 = series_degree(r, zeta2, target) if math.isfinite(zeta2) else None
-        if m2 is None:
-            return None
-        w2 = torch.bmm(w1, _drift_factor(r, (1.0,), z2, a2, m2, 0))
-        p_alpha = 1.0 / s
-        degree = max(m1, m2, 1)
-    p2 = torch.baddbmm(w2.new_zeros(()), w2, a2, beta=0, alpha=p_alpha)  # P2 = scale X2 Omega2 = W2 A2 / s
+    r = sqrt_series()
+    m1 = series_degree(r, zeta, target)
+    if m1 is None:
+        return None
+    w1 = torch.bmm(w, _drift_factor(r, (1.0,), z, a, m1, 0))
+    a2 = _scaled_skew(w1, noise, 0.5 * s * sigma / scale2).add_(a, alpha=decay)
+    z2 = torch.bmm(a2, a2)
+    zeta2 = float(_zeta(z2))  # the second drift has its own degree (one more sync)
+    m2 = series_degree(r, zeta2, target) if math.isfinite(zeta2) else None
+    if m2 is None:
+        return None
+    w2 = torch.bmm(w1, _drift_factor(r, (1.0,), z2, a2, m2, 0))
+    p2 = torch.baddbmm(w2.new_zeros(()), w2, a2, beta=0, alpha=1.0 / s)  # P2 = scale X2 Omega2 = W2 A2 / s
+    return _finish(w2, p2, max(m1, m2, 1))
+
+
+def _correct_drift(w: Tensor, drift: float, scale2: float, tolerance: float) -> Tensor | None:
+    """``w`` itself, ``w`` after one Newton-Schulz step when its measured
+    roundoff drift exceeds an eighth of the tolerance, or ``None`` (plain
+    path) when the drift is not finite or too large for one step to reach
+    roundoff (e.g. a weight projected in float32 and then cast to float64)."""
+    if not math.isfinite(drift) or drift > math.sqrt(0.125 * tolerance):
+        return None
+    if drift <= 0.125 * tolerance:
+        return w
+    g = torch.bmm(w.transpose(-1, -2), w).mul_(-0.5 / scale2)  # X <- X (3 I - X^T X) / 2
+    g.diagonal(dim1=-2, dim2=-1).add_(1.5)
+    return torch.bmm(w, g)
+
+
+def _finish(w2: Tensor, p2: Tensor, degree: int) -> tuple[Tensor, Tensor, Tensor, Tensor, int]:
     kinetic = 0.5 * torch.linalg.vector_norm(p2, dim=(-2, -1)) ** 2
     # W2 is finite when W, Z and A are (their bounds were read finite above); a
     # finite kinetic energy shows P2 is too
     ok = torch.isfinite(kinetic).all()
     return w2, p2, kinetic, ok, degree
+
+
+def power_coefficients(decay: float, count: int) -> tuple[float, ...]:
+    """``kappa_k``, ``k < count``, of ``K = sum_k kappa_k A^k`` at ``T = 0``:
+    ``kappa_{2j} = e_j`` and ``kappa_{2j+1} = o_j`` (module docstring)."""
+    e, o = _combined_series(decay)
+    return tuple(e[k // 2] if k % 2 == 0 else o[k // 2] for k in range(count))
+
+
+def momentum_tail(decay: float, zeta: float, first: int) -> float:
+    """Bound of ``d || sum_{k >= first} kappa_k A^{k+1} ||_2`` for
+    ``||A||_2^2 <= zeta``: the part of ``s P2 / scale = d X K A`` left out when
+    the momentum keeps only the products ``W A^j``, ``j <= first``."""
+    kappa = power_coefficients(decay, 2 * _TERMS)
+    return decay * sum(abs(c) * zeta ** ((k + 1) / 2) for k, c in enumerate(kappa) if k >= first)
+
+
+def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
+               tolerance: float) -> tuple[Tensor, Tensor, Tensor, Tensor, int] | None:
+    """The ``T = 0`` step from the products ``U_k = W A^k`` (module docstring)."""
+    scale2 = scale * scale
+    w = _correct_drift(w, float(_drift_error(w, scale2)), scale2, tolerance)  # first sync
+    if w is None:
+        return None
+    a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
+    u = [w, torch.bmm(w, a)]
+    u.append(torch.bmm(u[1], a))
+    zeta = float(_zeta(u[2])) / scale  # ||W Z||_F = scale ||Z||_F (second sync)
+    e, o = _combined_series(decay)
+    m_e = series_degree(e, zeta, 0.125 * tolerance)
+    # the odd part's truncation error is skew: it moves K off O(n) only at second order
+    # (module docstring), so it gets the looser budget of a trajectory error
+    m_o = series_degree(o, zeta, _ODD_BUDGET * tolerance, weight=math.sqrt(zeta)) if math.isfinite(zeta) else None
+    if m_e is None or m_o is None:
+        return None
+    degree = max(m_e, m_o, 1)
+    top = max(2 * m_e, 2 * m_o + 1)  # highest power of A in K
+    p_alpha = decay / s
+    if top > _PRODUCTS_MAX:  # large zeta (early, or large steps): Z's series is cheaper
+        w2 = torch.bmm(w, _drift_factor(e, o, torch.bmm(a, a), a, m_e, m_o))
+        return _finish(w2, torch.baddbmm(w2.new_zeros(()), w2, a, beta=0, alpha=p_alpha), degree)
+    while len(u) <= top:
+        u.append(torch.bmm(u[-1], a))
+    last = top if momentum_tail(decay, zeta, top) <= _MOMENTUM_BUDGET * tolerance else top + 1
+    if len(u) <= last:
+        u.append(torch.bmm(u[-1], a))
+    kappa = power_coefficients(decay, top + 1)
+    w2 = u[0] * kappa[0]
+    p2 = u[1] * (p_alpha * kappa[0])
+    for k in range(1, top + 1):
+        w2.add_(u[k], alpha=kappa[k])
+        if k < last:
+            p2.add_(u[k + 1], alpha=p_alpha * kappa[k])
+    return _finish(w2, p2, degree)
