@@ -7,7 +7,7 @@ import math
 
 import pytest
 
-from holonomic.bench.suite import compare, format_table, main
+from holonomic.bench.suite import _log_slope, bench_scaling, compare, format_table, main
 
 
 def test_compare_reports_interleaved_ratios():
@@ -33,3 +33,14 @@ def test_bench_command_writes_results(tmp_path, capsys):
     assert memory["sgd"]["state_bytes_per_param"] == pytest.approx(4.0)
     printed = capsys.readouterr().out
     assert "1 T=0 step vs SGD" in printed and format_table(result) in printed
+
+
+def test_scaling_reports_both_exponents():
+    # the fit recovers an exact power law (y = 3 x^2: slope 2)
+    assert _log_slope([1.0, 2.0, 4.0, 8.0], [3.0, 12.0, 48.0, 192.0]) == pytest.approx(2.0, rel=1e-12)
+    s = bench_scaling(1, (0.01, 0.04))["scaling"]
+    assert s["params"] == [10000, 40000] and len(s["step_ms"]) == len(s["sgd_step_ms"]) == 2
+    assert s["exponent"] == pytest.approx(_log_slope(s["params"], s["step_ms"]))
+    assert s["sgd_exponent"] == pytest.approx(_log_slope(s["params"], s["sgd_step_ms"]))
+    header = {"date": "-", "torch": "-", "threads": 1, "cpu_count": 1, "dtype": "float32"}
+    assert "SGD's k" in format_table({**header, "scaling": s})

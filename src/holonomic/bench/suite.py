@@ -23,7 +23,9 @@ Benchmarks (issue 6):
    and the floor of the ratio to cayley: the plain training step plus the
    three n x n products our T = 0 RATTLE step needs, over the cayley step.
 5. Scaling: constrained step time against parameter count (0.25 M to 8 M),
-   fitted exponent of ``time ~ count^k``.
+   fitted exponent of ``time ~ count^k``; SGD's exponent on the same
+   sizes, timed side by side, is reported too (the machine's cache makes
+   both superlinear when the large sizes leave it).
 6. Memory: optimizer state bytes per parameter, and peak resident memory
    growth of a short training run against SGD with momentum.
 
@@ -277,7 +279,7 @@ def _orthonormal_floor(width: int, x: torch.Tensor, y: torch.Tensor, *, their_st
 
 
 def bench_scaling(rounds: int, counts: tuple[float, ...]) -> dict[str, Any]:
-    sizes, times = [], []
+    sizes, times, sgd_times = [], [], []
     for millions in counts:
         width = int(round(math.sqrt(millions * 1e6)))
         layer = nn.Linear(width, width, bias=False)
@@ -289,11 +291,17 @@ def bench_scaling(rounds: int, counts: tuple[float, ...]) -> dict[str, Any]:
         cmp = compare(opt.step, base.step, rounds=rounds, calls=2)
         sizes.append(width * width)
         times.append(cmp["a_ms"])
-    lx = [math.log(s) for s in sizes]
-    ly = [math.log(t) for t in times]
+        sgd_times.append(cmp["b_ms"])
+    return {"scaling": {"params": sizes, "step_ms": times, "exponent": _log_slope(sizes, times),
+                        "sgd_step_ms": sgd_times, "sgd_exponent": _log_slope(sizes, sgd_times)}}
+
+
+def _log_slope(xs: list[float], ys: list[float]) -> float:
+    """Least-squares slope of ``log y`` against ``log x``."""
+    lx = [math.log(x) for x in xs]
+    ly = [math.log(y) for y in ys]
     mx, my = statistics.fmean(lx), statistics.fmean(ly)
-    slope = sum((a - mx) * (b - my) for a, b in zip(lx, ly)) / sum((a - mx) ** 2 for a in lx)
-    return {"scaling": {"params": sizes, "step_ms": times, "exponent": slope}}
+    return sum((a - mx) * (b - my) for a, b in zip(lx, ly)) / sum((a - mx) ** 2 for a in lx)
 
 
 def memory_child(name: str, steps: int = 5) -> dict[str, float]:
@@ -405,7 +413,8 @@ def format_table(r: dict[str, Any]) -> str:
     if "scaling" in r:
         s = r["scaling"]
         lines.append(f"5 step time ~ params^k, {s['params'][0]/1e6:.2f}M..{s['params'][-1]/1e6:.2f}M  [<=1.05]  "
-                     f"k = {s['exponent']:.3f}  (ms: {', '.join(f'{t:.1f}' for t in s['step_ms'])})")
+                     f"k = {s['exponent']:.3f}  (ms: {', '.join(f'{t:.1f}' for t in s['step_ms'])}); "
+                     f"SGD's k = {s['sgd_exponent']:.3f}")
     if "memory" in r:
         m = r["memory"]
         lines.append(f"6 state bytes/param: holonomic {m['holonomic']['state_bytes_per_param']:.2f}, "
