@@ -218,13 +218,40 @@ def test_cold_step_from_three_products_against_closed_form_rattle(monkeypatch):
     # momentum, as the next drift's displacement s P / scale: within its budget, and the cut is
     # visible (so this check can fail); momentum_tail is the bound the step used
     err = float(torch.linalg.matrix_norm(s * (p2 - p2_exact), 2)) / scale
-    assert 1e-3 * tol < err <= fo.momentum_tail(d, 1e-6, 2) <= 0.5 * tol
-    # its normal part is of order zeta^2 (module docstring)
-    m = x2.T @ (s * p2 / scale)
-    assert float(torch.linalg.matrix_norm(m + m.T, 2)) <= 10 * 1e-12
+    assert 1e-3 * tol < err <= d * fo.momentum_tail(d, 1e-6, 2) <= 0.5 * tol
+    # the cut power A^3 is tangent; the momentum's normal part is second order, relative size
+    # below (1 + d) tau (module docstring)
+    m = x2.T @ p2
+    normal = float(torch.linalg.matrix_norm(0.5 * (m + m.T))) / float(torch.linalg.matrix_norm(p2))
+    assert normal <= (1 + d) * fo.momentum_tail(d, 1e-6, 2) <= tol
     assert torch.allclose(kinetic[0], 0.5 * (p2 * p2).sum(), rtol=1e-14, atol=0)
     # a step that cut one term more (the U_2 term of the momentum) fails the budget
     e, o = fo._combined_series(d)
     u1 = w[0] @ a
     cut_more = d / s * e[0] * u1
     assert float(torch.linalg.matrix_norm(s * (cut_more - p2_exact), 2)) / scale > 10 * tol
+
+
+@pytest.mark.parametrize("lr", [0.002, 0.05])
+def test_cold_step_float32_momentum_stays_tangent(lr):
+    # float32 training at T = 0 (SGD-style momentum 0.9): at the small step the momentum's cut
+    # term is left out (N = 2), at the larger one N is rounded up to an even degree; in both the
+    # stored momentum must stay tangent to the dtype tolerance (8 eps,
+    # geometry.base.default_tolerance), as RATTLE's is to roundoff
+    layer = nn.Linear(48, 48, bias=False)
+    with torch.no_grad():
+        layer.weight.copy_(torch.linalg.qr(torch.randn(48, 48, generator=torch.Generator().manual_seed(8)))[0])
+    geometry = hn.Orthonormal()
+    hn.constrain(layer, weight=geometry)
+    opt = hn.Langevin.from_sgd(layer.parameters(), lr=lr, momentum=0.9)
+    target = torch.randn(48, 48, generator=torch.Generator().manual_seed(9))
+    worst, degrees = 0.0, set()
+    for _ in range(150):
+        opt.zero_grad()
+        ((layer.weight - target) ** 2).sum().backward()
+        opt.step()
+        degrees.add(opt.last_info.parameters[0].projection_iterations)
+        worst = max(worst, float(geometry.tangent_residual(layer.weight.detach(), opt.state[layer.weight]["momentum"])))
+    assert worst <= default_tolerance(torch.float32)
+    assert hn.residuals(layer)["weight"] <= default_tolerance(torch.float32)
+    assert degrees  # the fast path ran

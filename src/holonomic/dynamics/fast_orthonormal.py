@@ -49,22 +49,28 @@ drifts are series in the same ``Z``: ``K1 K2 = E(Z) + s Omega O(Z)`` with
 
     W2 = sum_{k <= N} kappa_k U_k,     s P2 = d W2 A = d sum_{k <= N} kappa_k U_{k+1}
 
-and ``U_{k+1} = U_k A`` is one n x n product.  For the small ``A`` of
-training ``N = 2`` suffices, and the step costs three products (``W^T V``,
-``U_1``, ``U_2``) instead of four (``W^T V``, ``Z = A A``, ``W K`` and
-``W2 A``; five when ``O`` needs its linear term).  ``zeta`` is read from ``||U_2||_F = scale ||Z||_F``.  The
-momentum's last term ``d kappa_N U_{N+1}`` would cost a fourth product; it
-is left out when the bound of everything it and the higher powers add,
-``d sum_{k >= N} |kappa_k| zeta^{(k+1)/2}``, is below half the tolerance
-(:func:`momentum_tail`; in the unit frame, ``s P2`` is the next drift's
-displacement, so this is a trajectory error of the same budget as the odd
-series below).  The stored momentum then differs from RATTLE's ``X2
-Omega2`` by that much; its normal part (the symmetric part of ``X2^T (s
-P2)``, from the even powers of ``K^T A^{N+1}``) is of order
-``zeta^{(N+2)/2}`` (``zeta^2`` at ``N = 2``), far below the tolerance, and the next kick
-projects onto the tangent space anyway.  Beyond ``N = 4`` (large ``zeta``:
-early in training or at large steps) the step forms ``Z`` and uses the
-series in ``Z`` (Paterson-Stockmeyer), as the ``T > 0`` step always does.
+and ``U_{k+1} = U_k A`` is one n x n product.  ``N`` is the highest power
+the series cuts below (``Truncation`` below) need, rounded up to an even
+number.  For the small ``A`` of training ``N = 2`` suffices, and the step
+costs three products (``W^T V``, ``U_1``, ``U_2``) instead of four
+(``W^T V``, ``Z = A A``, ``W K`` and ``W2 A``; five when ``O`` needs its
+linear term).  ``zeta`` is read from ``||U_2||_F = scale ||Z||_F``.
+
+The momentum's last term ``d kappa_N U_{N+1}`` would cost one more
+product.  It is left out when ``tau = sum_{k >= N} |kappa_k|
+zeta^{(k+1)/2}`` (:func:`momentum_tail`, a bound of everything it and the
+higher powers add) is at most half the tolerance.  What that changes,
+against RATTLE's ``P2 = X2 Omega2`` (unit frame, ``s P2`` being the next
+drift's displacement): (1) the trajectory, by at most ``d tau <= tol / 2``,
+the budget of the odd series below; (2) the momentum's tangency: ``N`` is
+even, so the cut power ``A^{N+1}`` is skew, a tangent direction in the body
+frame, and its normal part (the symmetric part of ``K^T A^{N+1}``, led by
+``o_0 A^{N+2}``) is of relative size ``<= o_0 tau <= (1 + d) tol / 2 <=
+tol``; an odd ``N`` would cut an even power, which is normal, at first
+order.  The next kick projects onto the tangent space anyway.  Beyond
+``N = 4`` (large ``zeta``: early in training or at large steps) the step
+forms ``Z`` and uses the series in ``Z`` (Paterson-Stockmeyer), as the
+``T > 0`` step always does.
 
 **Truncation, existence, failure.**  ``zeta = ||Z||_F`` bounds ``||Z||_2``
 (loosely: for a random skew ``A`` of size n, by a factor of about
@@ -323,11 +329,12 @@ def power_coefficients(decay: float, count: int) -> tuple[float, ...]:
 
 
 def momentum_tail(decay: float, zeta: float, first: int) -> float:
-    """Bound of ``d || sum_{k >= first} kappa_k A^{k+1} ||_2`` for
-    ``||A||_2^2 <= zeta``: the part of ``s P2 / scale = d X K A`` left out when
-    the momentum keeps only the products ``W A^j``, ``j <= first``."""
+    """``tau = sum_{k >= first} |kappa_k| zeta^{(k+1)/2}``, a bound of
+    ``|| sum_{k >= first} kappa_k A^{k+1} ||_2`` for ``||A||_2^2 <= zeta``:
+    what ``X K A`` loses (unit frame) when the momentum keeps only the
+    products ``W A^j``, ``j <= first`` (module docstring)."""
     kappa = power_coefficients(decay, 2 * _TERMS)
-    return decay * sum(abs(c) * zeta ** ((k + 1) / 2) for k, c in enumerate(kappa) if k >= first)
+    return sum(abs(c) * zeta ** ((k + 1) / 2) for k, c in enumerate(kappa) if k >= first)
 
 
 def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
@@ -349,7 +356,8 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
     if m_e is None or m_o is None:
         return None
     degree = max(m_e, m_o, 1)
-    top = max(2 * m_e, 2 * m_o + 1)  # highest power of A in K
+    top = max(2 * m_e, 2 * m_o + 1)
+    top += top % 2  # highest power of A in K, even (module docstring)
     p_alpha = decay / s
     if top > _PRODUCTS_MAX:  # large zeta (early, or large steps): Z's series is cheaper
         w2 = torch.bmm(w, _drift_factor(e, o, torch.bmm(a, a), a, m_e, m_o))
