@@ -184,24 +184,62 @@ def test_cut_odd_series_moves_the_drift_factor_off_the_group_only_at_second_orde
     assert norm_a < 0.05 and err < 0.2 * size
 
 
-def test_cold_step_from_three_products_against_closed_form_rattle(monkeypatch):
-    # T = 0: W2 = W K1 K2 with K1 = sqrt(I + A^2) + A, K2 = sqrt(I + d^2 A^2) + d A (two RATTLE
-    # drifts in closed form, module docstring; square roots by scipy.linalg.sqrtm as the outside
-    # reference) and P2 = d W2 A / s.  The fast step forms only W^T V, W A, W A^2 and leaves out
-    # the momentum's A^3 term when its bound is below half the tolerance.
-    n, scale, s, d, tol = 8, 0.8, 0.05, 0.9, 1e-8
-    g = torch.Generator().manual_seed(11)
-    x, _ = torch.linalg.qr(torch.randn(n, n, generator=g, dtype=torch.float64))
-    w = (scale * x)[None]
-    v = torch.randn(1, n, n, generator=g, dtype=torch.float64)
+def _cold_inputs(n, scale, s, zeta, batch, rank2=False, seed=11):
+    """Orthonormal W (times scale) and V such that A = s skew(X^T V) has ||A A||_F = zeta
+    (largest over the batch); rank2 makes A of rank two, where ||A||_2^2 = zeta / sqrt(2)."""
+    g = torch.Generator().manual_seed(seed)
+    x = torch.linalg.qr(torch.randn(batch, n, n, generator=g, dtype=torch.float64))[0]
+    w = scale * x
+    if rank2:
+        b = torch.randn(batch, n, 2, generator=g, dtype=torch.float64)
+        v = w @ (b[..., :1] @ b[..., 1:].transpose(-1, -2))  # X^T V has rank one: its skew part rank two
+    else:
+        v = torch.randn(batch, n, n, generator=g, dtype=torch.float64)
+    z = fo._zeta(torch.bmm(*(2 * [fo._scaled_skew(w, v, 0.5 * s / scale**2)])))
+    return w, v * math.sqrt(zeta / float(z))
+
+
+def _closed_form_cold(w, a, scale, s, d):
+    """W2 = W K1 K2 with K1 = sqrt(I + A^2) + A, K2 = sqrt(I + d^2 A^2) + d A (two RATTLE drifts
+    at T = 0, module docstring) and P2 = d W2 A / s; square roots by scipy.linalg.sqrtm (the
+    outside reference)."""
+    eye = torch.eye(w.shape[-1], dtype=torch.float64)
+    out_w, out_p = [], []
+    for wi, ai in zip(w, a):
+        k1 = torch.from_numpy(scipy.linalg.sqrtm((eye + ai @ ai).numpy()).real) + ai
+        k2 = torch.from_numpy(scipy.linalg.sqrtm((eye + d * d * ai @ ai).numpy()).real) + d * ai
+        out_w.append(wi @ k1 @ k2)
+        out_p.append(d * out_w[-1] @ ai / s)
+    return torch.stack(out_w), torch.stack(out_p)
+
+
+# (scale, zeta, batch, rank2, decay, n x n products expected from torch.bmm)
+_COLD_CASES = {
+    "momentum term cut": (0.8, 1e-6, 1, False, 0.9, 2),
+    "large scale, rank-two A, batch": (8.0, 1e-5, 2, True, 0.9, 4),
+    "momentum term kept": (1.0, 2.7e-6, 1, False, 0.9, 3),
+    "decay 0": (1.0, 5e-6, 1, False, 0.0, 2),
+    "large zeta: series in Z": (1.0, 1e-2, 1, False, 0.9, None),
+}
+
+
+@pytest.mark.parametrize("case", list(_COLD_CASES))
+def test_cold_step_against_closed_form_rattle(case, monkeypatch):
+    # T = 0: the fast step forms W^T V and the products W A^k (module docstring) and leaves
+    # out the momentum's last term when its bound tau is below half the tolerance; it must
+    # land within its budgets of the closed-form RATTLE step, whichever branch it takes
+    scale, zeta, batch, rank2, d, products = _COLD_CASES[case]
+    n, s, tol = 8, 0.05, 1e-8
+    w, v = _cold_inputs(n, scale, s, zeta, batch, rank2)
     a = fo._scaled_skew(w, v, 0.5 * s / scale**2)
-    v = v * math.sqrt(1e-6 / float(torch.linalg.matrix_norm(a[0] @ a[0])))  # zeta = ||Z||_F = 1e-6
-    a = fo._scaled_skew(w, v, 0.5 * s / scale**2)[0]
-    eye = torch.eye(n, dtype=torch.float64)
-    k1 = torch.from_numpy(scipy.linalg.sqrtm((eye + a @ a).numpy()).real) + a
-    k2 = torch.from_numpy(scipy.linalg.sqrtm((eye + d * d * a @ a).numpy()).real) + d * a
-    w2_exact = w[0] @ k1 @ k2
-    p2_exact = d * w2_exact @ a / s
+    w2_exact, p2_exact = _closed_form_cold(w, a, scale, s, d)
+    tau = fo.momentum_tail(d, zeta, 2)
+    if case == "momentum term cut":
+        assert tau <= 0.5 * tol and fo._cold_degrees(d, zeta, tol)[2] == 2
+    if case in ("momentum term kept", "decay 0"):
+        assert tau > 0.5 * tol and fo._cold_degrees(d, zeta, tol)[2] == 2
+    if case == "large zeta: series in Z":
+        assert fo._cold_degrees(d, zeta, tol)[2] > fo._PRODUCTS_MAX
 
     calls = []
     real_bmm = torch.bmm
@@ -209,27 +247,54 @@ def test_cold_step_from_three_products_against_closed_form_rattle(monkeypatch):
     w2, p2, kinetic, ok, degree = fo.square_orthonormal_baoab(
         w, v, None, scale=scale, step=2 * s, decay=d, sigma=0.0, tolerance=tol)
     monkeypatch.undo()
-    assert bool(ok) and len(calls) == 2  # U_1 and U_2; W^T V is the one baddbmm
-    w2, p2 = w2[0], p2[0]
-    # position: even tail (an eighth of tol) plus odd tail (half of tol), unit frame
-    assert float(torch.linalg.matrix_norm(w2 - w2_exact, 2)) / scale <= 0.625 * tol
-    x2 = w2 / scale
-    assert float(torch.linalg.matrix_norm(x2.T @ x2 - eye, 2)) <= 0.25 * tol
-    # momentum, as the next drift's displacement s P / scale: within its budget, and the cut is
-    # visible (so this check can fail); momentum_tail is the bound the step used
-    err = float(torch.linalg.matrix_norm(s * (p2 - p2_exact), 2)) / scale
-    assert 1e-3 * tol < err <= d * fo.momentum_tail(d, 1e-6, 2) <= 0.5 * tol
-    # the cut power A^3 is tangent; the momentum's normal part is second order, relative size
-    # below (1 + d) tau (module docstring)
-    m = x2.T @ p2
-    normal = float(torch.linalg.matrix_norm(0.5 * (m + m.T))) / float(torch.linalg.matrix_norm(p2))
-    assert normal <= (1 + d) * fo.momentum_tail(d, 1e-6, 2) <= tol
-    assert torch.allclose(kinetic[0], 0.5 * (p2 * p2).sum(), rtol=1e-14, atol=0)
-    # a step that cut one term more (the U_2 term of the momentum) fails the budget
-    e, o = fo._combined_series(d)
-    u1 = w[0] @ a
-    cut_more = d / s * e[0] * u1
-    assert float(torch.linalg.matrix_norm(s * (cut_more - p2_exact), 2)) / scale > 10 * tol
+    assert bool(ok)
+    if products is not None:
+        assert len(calls) == products  # W^T V is the one baddbmm
+    eye = torch.eye(n, dtype=torch.float64)
+    for i in range(batch):
+        # position: even tail (an eighth of tol) plus odd tail (half of tol), unit frame
+        assert float(torch.linalg.matrix_norm(w2[i] - w2_exact[i], 2)) / scale <= 0.625 * tol
+        x2 = w2[i] / scale
+        assert float(torch.linalg.matrix_norm(x2.T @ x2 - eye, 2)) <= 0.25 * tol
+        # momentum, as the next drift's displacement s P / scale: within its budget
+        err = float(torch.linalg.matrix_norm(s * (p2[i] - p2_exact[i]), 2)) / scale
+        assert err <= 0.5 * tol
+        if d > 0:
+            # the stored momentum's normal part: second order for the (odd) cut power (module docstring)
+            m = x2.T @ p2[i]
+            normal = float(torch.linalg.matrix_norm(0.5 * (m + m.T))) / float(torch.linalg.matrix_norm(p2[i]))
+            assert normal <= max((1 + d) * tau, 1e-13)
+    if case == "momentum term cut":
+        # the cut is visible (so the budget check above can fail) and tau bounds it
+        err = float(torch.linalg.matrix_norm(s * (p2[0] - p2_exact[0]), 2)) / scale
+        assert 1e-3 * tol < err <= d * tau
+        # a step that cut one term more (the U_2 term of the momentum) fails the budget
+        cut_more = d / s * fo.power_coefficients(d, 1)[0] * (w[0] @ a[0])
+        assert float(torch.linalg.matrix_norm(s * (cut_more - p2_exact[0]), 2)) / scale > 10 * tol
+    if case == "decay 0":
+        assert not p2.any()
+    assert torch.allclose(kinetic, 0.5 * (p2 * p2).sum((-2, -1)), rtol=1e-14, atol=0)
+
+
+def test_cold_step_corrects_roundoff_drift_first():
+    # W off the set by about 1e-6 (between the correction threshold tol / 8 and its limit
+    # sqrt(tol / 8)): one Newton-Schulz step brings it to ~1e-12, then the step lands within
+    # its budgets of the closed-form step from the polar factor of W (the nearest orthogonal
+    # matrix, by SVD)
+    n, scale, s, d, tol = 8, 1.0, 0.05, 0.9, 1e-8
+    w, v = _cold_inputs(n, scale, s, 1e-6, 1)
+    sym = torch.randn(n, n, generator=torch.Generator().manual_seed(3), dtype=torch.float64)
+    w = w @ (torch.eye(n, dtype=torch.float64) + 1e-6 * (sym + sym.T))
+    assert 0.125 * tol < float(fo._drift_error(w, scale**2)) < math.sqrt(0.125 * tol)
+    u_, _, vh = torch.linalg.svd(w)
+    a = fo._scaled_skew(w, v, 0.5 * s / scale**2)  # A from the uncorrected W, as the step forms it
+    w2_exact, _ = _closed_form_cold(u_ @ vh, a, scale, s, d)
+    w2, _, _, ok, _ = fo.square_orthonormal_baoab(w, v, None, scale=scale, step=2 * s, decay=d, sigma=0.0,
+                                                  tolerance=tol)
+    assert bool(ok)
+    x2 = w2[0] / scale
+    assert float(torch.linalg.matrix_norm(x2.T @ x2 - torch.eye(n, dtype=torch.float64), 2)) <= 0.25 * tol
+    assert float(torch.linalg.matrix_norm(w2[0] - w2_exact[0], 2)) / scale <= 0.625 * tol
 
 
 @pytest.mark.parametrize("lr", [0.002, 0.05])

@@ -51,10 +51,12 @@ drifts are series in the same ``Z``: ``K1 K2 = E(Z) + s Omega O(Z)`` with
 
 and ``U_{k+1} = U_k A`` is one n x n product.  ``N`` is the highest power
 the series cuts below (``Truncation`` below) need, rounded up to an even
-number.  For the small ``A`` of training ``N = 2`` suffices, and the step
-costs three products (``W^T V``, ``U_1``, ``U_2``) instead of four
-(``W^T V``, ``Z = A A``, ``W K`` and ``W2 A``; five when ``O`` needs its
-linear term).  ``zeta`` is read from ``||U_2||_F = scale ||Z||_F``.
+number.  For the small ``A`` of training ``N = 2`` suffices, and in
+float32 the step costs three products (``W^T V``, ``U_1``, ``U_2``) instead
+of four (``W^T V``, ``Z = A A``, ``W K`` and ``W2 A``; five when ``O`` needs
+its linear term).  In float64 the momentum's term below is cut only for
+``zeta`` below about ``1e-10``, so four products are usual there.  ``zeta``
+is read from ``||U_2||_F = scale ||Z||_F``.
 
 The momentum's last term ``d kappa_N U_{N+1}`` would cost one more
 product.  It is left out when ``tau = sum_{k >= N} |kappa_k|
@@ -62,7 +64,8 @@ zeta^{(k+1)/2}`` (:func:`momentum_tail`, a bound of everything it and the
 higher powers add) is at most half the tolerance.  What that changes,
 against RATTLE's ``P2 = X2 Omega2`` (unit frame, ``s P2`` being the next
 drift's displacement): (1) the trajectory, by at most ``d tau <= tol / 2``,
-the budget of the odd series below; (2) the momentum's tangency: ``N`` is
+on top of the odd series' ``tol / 2`` and the even series' ``tol / 8`` below
+(at most ``1.125 tol`` per step in all); (2) the momentum's tangency: ``N`` is
 even, so the cut power ``A^{N+1}`` is skew, a tangent direction in the body
 frame, and its normal part (the symmetric part of ``K^T A^{N+1}``, led by
 ``o_0 A^{N+2}``) is of relative size ``<= o_0 tau <= (1 + d) tol / 2 <=
@@ -88,9 +91,10 @@ changes where the step lands by at most
 half the tolerance (the plain path's SHAKE iteration stops within about the
 same distance of the exact root) without loosening the constraint.  At the
 benchmark's width 1024 this drops the cubic term (one more product).  Reading
-``zeta`` is one host synchronisation per drift; at ``T = 0`` the drift check
-below is read first, in a synchronisation of its own, because ``U_k`` are
-formed from the corrected ``W``.
+``zeta`` is one host synchronisation per drift.  At ``T = 0`` there are
+two: first the drift check below together with ``||A||_F^2``, a bound of
+``||Z||_F`` that needs no product (it picks the products ``U_k`` or, when
+even the bound is too large for them, ``Z`` first), then ``zeta`` itself.
 When ``zeta > 1/4`` (``s ||Omega||_2`` may exceed ``1/2``), when no degree
 up to ``MAX_DEGREE`` suffices, or when a value is not finite, the fast path
 is abandoned (nothing changed) and the plain path takes the step or raises
@@ -337,34 +341,60 @@ def momentum_tail(decay: float, zeta: float, first: int) -> float:
     return sum(abs(c) * zeta ** ((k + 1) / 2) for k, c in enumerate(kappa) if k >= first)
 
 
-def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
-               tolerance: float) -> tuple[Tensor, Tensor, Tensor, Tensor, int] | None:
-    """The ``T = 0`` step from the products ``U_k = W A^k`` (module docstring)."""
-    scale2 = scale * scale
-    w = _correct_drift(w, float(_drift_error(w, scale2)), scale2, tolerance)  # first sync
-    if w is None:
+def _cold_degrees(decay: float, zeta: float, tolerance: float) -> tuple[int, int, int] | None:
+    """``(m_e, m_o, N)`` at ``T = 0``: the degrees of the series ``E`` and
+    ``O`` for ``||Z||_2 <= zeta`` and the highest power of ``A`` in ``K``,
+    rounded up to an even number (module docstring); ``None`` when no degree
+    suffices."""
+    if not math.isfinite(zeta):
         return None
-    a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
-    u = [w, torch.bmm(w, a)]
-    u.append(torch.bmm(u[1], a))
-    zeta = float(_zeta(u[2])) / scale  # ||W Z||_F = scale ||Z||_F (second sync)
     e, o = _combined_series(decay)
     m_e = series_degree(e, zeta, 0.125 * tolerance)
     # the odd part's truncation error is skew: it moves K off O(n) only at second order
     # (module docstring), so it gets the looser budget of a trajectory error
-    m_o = series_degree(o, zeta, _ODD_BUDGET * tolerance, weight=math.sqrt(zeta)) if math.isfinite(zeta) else None
+    m_o = series_degree(o, zeta, _ODD_BUDGET * tolerance, weight=math.sqrt(zeta))
     if m_e is None or m_o is None:
         return None
-    degree = max(m_e, m_o, 1)
     top = max(2 * m_e, 2 * m_o + 1)
-    top += top % 2  # highest power of A in K, even (module docstring)
+    return m_e, m_o, top + top % 2
+
+
+def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
+               tolerance: float) -> tuple[Tensor, Tensor, Tensor, Tensor, int] | None:
+    """The ``T = 0`` step from the products ``U_k = W A^k`` (module docstring)."""
+    scale2 = scale * scale
+    a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
+    # ||Z||_F <= ||A||_F^2 bounds zeta without a product (first sync, with the drift check)
+    rough, drift = (float(t) for t in torch.stack([a.square().sum((-2, -1)).amax(), _drift_error(w, scale2)]).cpu())
+    w = _correct_drift(w, drift, scale2, tolerance)
+    rough_degrees = _cold_degrees(decay, rough, tolerance)
+    if w is None or not math.isfinite(rough):
+        return None
+    z = None
+    u = [w, torch.bmm(w, a)] if rough_degrees is not None and rough_degrees[2] <= _PRODUCTS_MAX else []
+    if u:
+        u.append(torch.bmm(u[1], a))
+        zeta = float(_zeta(u[2])) / scale  # ||W Z||_F = scale ||Z||_F (second sync)
+    else:
+        z = torch.bmm(a, a)
+        zeta = float(_zeta(z))  # second sync
+    degrees = _cold_degrees(decay, zeta, tolerance)
+    if degrees is None:
+        return None
+    m_e, m_o, top = degrees
+    degree = max(m_e, m_o, 1)
     p_alpha = decay / s
     if top > _PRODUCTS_MAX:  # large zeta (early, or large steps): Z's series is cheaper
-        w2 = torch.bmm(w, _drift_factor(e, o, torch.bmm(a, a), a, m_e, m_o))
+        e, o = _combined_series(decay)
+        w2 = torch.bmm(w, _drift_factor(e, o, torch.bmm(a, a) if z is None else z, a, m_e, m_o))
         return _finish(w2, torch.baddbmm(w2.new_zeros(()), w2, a, beta=0, alpha=p_alpha), degree)
+    if not u:
+        u = [w, torch.bmm(w, a), torch.bmm(w, z)]
     while len(u) <= top:
         u.append(torch.bmm(u[-1], a))
-    last = top if momentum_tail(decay, zeta, top) <= _MOMENTUM_BUDGET * tolerance else top + 1
+    # at decay 0 the momentum is zero: nothing to add
+    cut = decay == 0 or momentum_tail(decay, zeta, top) <= _MOMENTUM_BUDGET * tolerance
+    last = top if cut else top + 1
     if len(u) <= last:
         u.append(torch.bmm(u[-1], a))
     kappa = power_coefficients(decay, top + 1)
