@@ -365,7 +365,7 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
     scale2 = scale * scale
     a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
     # ||Z||_F <= ||A||_F^2 bounds zeta without a product (first sync, with the drift check)
-    rough, drift = (float(t) for t in torch.stack([a.square().sum((-2, -1)).amax(), _drift_error(w, scale2)]).cpu())
+    rough, drift = (float(t) for t in torch.stack([_zeta(a).square(), _drift_error(w, scale2)]).cpu())
     w = _correct_drift(w, drift, scale2, tolerance)
     rough_degrees = _cold_degrees(decay, rough, tolerance)
     if w is None or not math.isfinite(rough):
@@ -397,11 +397,12 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
     last = top if cut else top + 1
     if len(u) <= last:
         u.append(torch.bmm(u[-1], a))
-    kappa = power_coefficients(decay, top + 1)
-    w2 = u[0] * kappa[0]
-    p2 = u[1] * (p_alpha * kappa[0])
+    kappa = power_coefficients(decay, top + 1)  # kappa_0 = e_0 = 1
+    w2 = torch.add(u[0], u[1], alpha=kappa[1])
+    p2 = u[1] * p_alpha
     for k in range(1, top + 1):
-        w2.add_(u[k], alpha=kappa[k])
+        if k > 1:
+            w2.add_(u[k], alpha=kappa[k])
         if k < last:
             p2.add_(u[k + 1], alpha=p_alpha * kappa[k])
     return _finish(w2, p2, degree)
