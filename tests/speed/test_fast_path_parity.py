@@ -121,20 +121,26 @@ def _assert_unchanged(before, after):
         assert torch.equal(v, after[1]["generators"][k])
 
 
-def test_fast_path_failure_changes_nothing_and_reports_like_reference():
-    net = _net()
-    opt = hn.Langevin(net.parameters(), step=0.1, temperature=0.3)
+def check_bad_gradient_changes_nothing(net, opt, value):
+    """After three steps, a step whose gradient of ``net[2].weight`` holds ``value`` (inf or
+    nan) raises, names that parameter and changes nothing."""
     data = _data()
     _run(net, opt, 3, data)
     before = _snapshot(net, opt)
     x, y = data
     opt.zero_grad()
     ((net(x) - y) ** 2).mean().backward()
-    net[2].weight.grad[0, 0] = float("inf")  # a fast-path parameter
+    net[2].weight.grad[0, 0] = value
     with pytest.raises(hn.IntegrationError, match="non-finite gradient") as err:
         opt.step()
     assert err.value.reason == "non-finite gradient" and err.value.parameter == "Linear.weight"
     _assert_unchanged(before, (net.state_dict(), opt.state_dict()))
+
+
+def test_fast_path_failure_changes_nothing_and_reports_like_reference():
+    net = _net()
+    opt = hn.Langevin(net.parameters(), step=0.1, temperature=0.3)
+    check_bad_gradient_changes_nothing(net, opt, float("inf"))  # net[2].weight: a fast-path parameter
 
 
 def check_unprojectable_first_step_changes_nothing(**kwargs):
