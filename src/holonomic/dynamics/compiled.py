@@ -52,6 +52,7 @@ plain reference path in float64.
 from __future__ import annotations
 
 import warnings
+from functools import lru_cache
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 import torch
@@ -165,8 +166,6 @@ def _kicked(w: Tensor, m: Tensor, g: Tensor, h: Tensor, scale: Tensor, wd: Tenso
     return m - h * (scale * g + wd * w)
 
 
-_compiled: Callable[..., tuple[Tensor, Tensor]] | None = None
-
 #: Inductor options for the kernel only.  By default the C++ backend runs
 #: every loop of 1024 or more elements in parallel (OpenMP), so the per-vector
 #: arithmetic between the two passes (closed form, flags, kinetic energies;
@@ -179,26 +178,16 @@ _compiled: Callable[..., tuple[Tensor, Tensor]] | None = None
 _INDUCTOR_OPTIONS = {"cpp.min_chunk_size": 4096}
 
 
+@lru_cache(maxsize=None)
 def _compiled_kernel() -> Callable[..., tuple[Tensor, Tensor]]:
-    global _compiled
-    if _compiled is None:
-        _compiled = torch.compile(baoab_kernel, dynamic=False, fullgraph=True, options=_INDUCTOR_OPTIONS)
-    return _compiled
+    """The compiled kernel, shared by all optimizers (made on first use)."""
+    return torch.compile(baoab_kernel, dynamic=False, fullgraph=True, options=_INDUCTOR_OPTIONS)
 
 
-_COMPILE_ERRORS: tuple[type[BaseException], ...] | None = None
-
-
+@lru_cache(maxsize=None)
 def _compile_errors() -> tuple[type[BaseException], ...]:
     """Exception types that mean "could not compile" (private torch modules,
     looked up defensively: their names move between releases); looked up once."""
-    global _COMPILE_ERRORS
-    if _COMPILE_ERRORS is None:
-        _COMPILE_ERRORS = _find_compile_errors()
-    return _COMPILE_ERRORS
-
-
-def _find_compile_errors() -> tuple[type[BaseException], ...]:
     found: list[type[BaseException]] = []
     for module, names in (("torch._dynamo.exc", ("TorchDynamoException", "FailOnRecompileLimitHit")),
                           ("torch._inductor.exc", ("InductorError", "CppCompileError"))):
