@@ -325,6 +325,7 @@ def _finish(w2: Tensor, p2: Tensor, degree: int) -> tuple[Tensor, Tensor, Tensor
     return w2, p2, kinetic, ok, degree
 
 
+@lru_cache(maxsize=64)
 def power_coefficients(decay: float, count: int) -> tuple[float, ...]:
     """``kappa_k``, ``k < count``, of ``K = sum_k kappa_k A^k`` at ``T = 0``:
     ``kappa_{2j} = e_j`` and ``kappa_{2j+1} = o_j`` (module docstring)."""
@@ -367,16 +368,17 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
     # ||Z||_F <= ||A||_F^2 bounds zeta without a product (first sync, with the drift check)
     rough, drift = (float(t) for t in torch.stack([_zeta(a).square(), _drift_error(w, scale2)]).cpu())
     w = _correct_drift(w, drift, scale2, tolerance)
-    rough_degrees = _cold_degrees(decay, rough, tolerance)
     if w is None or not math.isfinite(rough):
         return None
-    z = None
-    u = [w, torch.bmm(w, a)] if rough_degrees is not None and rough_degrees[2] <= _PRODUCTS_MAX else []
-    if u:
+    rough_degrees = _cold_degrees(decay, rough, tolerance)
+    if rough_degrees is not None and rough_degrees[2] <= _PRODUCTS_MAX:
+        z = None
+        u = [w, torch.bmm(w, a)]
         u.append(torch.bmm(u[1], a))
         zeta = float(_zeta(u[2])) / scale  # ||W Z||_F = scale ||Z||_F (second sync)
-    else:
+    else:  # even the bound needs the series in Z: form Z first
         z = torch.bmm(a, a)
+        u = None  # formed below only if the exact zeta allows the products
         zeta = float(_zeta(z))  # second sync
     degrees = _cold_degrees(decay, zeta, tolerance)
     if degrees is None:
@@ -388,7 +390,7 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
         e, o = _combined_series(decay)
         w2 = torch.bmm(w, _drift_factor(e, o, torch.bmm(a, a) if z is None else z, a, m_e, m_o))
         return _finish(w2, torch.baddbmm(w2.new_zeros(()), w2, a, beta=0, alpha=p_alpha), degree)
-    if not u:
+    if u is None:
         u = [w, torch.bmm(w, a), torch.bmm(w, z)]
     while len(u) <= top:
         u.append(torch.bmm(u[-1], a))
@@ -399,10 +401,9 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
         u.append(torch.bmm(u[-1], a))
     kappa = power_coefficients(decay, top + 1)  # kappa_0 = e_0 = 1
     w2 = torch.add(u[0], u[1], alpha=kappa[1])
+    for k in range(2, top + 1):
+        w2.add_(u[k], alpha=kappa[k])
     p2 = u[1] * p_alpha
-    for k in range(1, top + 1):
-        if k > 1:
-            w2.add_(u[k], alpha=kappa[k])
-        if k < last:
-            p2.add_(u[k + 1], alpha=p_alpha * kappa[k])
+    for k in range(1, last):
+        p2.add_(u[k + 1], alpha=p_alpha * kappa[k])
     return _finish(w2, p2, degree)
