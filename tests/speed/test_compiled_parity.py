@@ -23,8 +23,16 @@ from tests.speed import test_fast_path_parity as fast_parity
 from tests.speed.test_fast_path_parity import _assert_unchanged, _data, _groups, _run, _snapshot, assert_same_run
 
 
-def _net(seed=0):
-    return fast_parity._net(seed, orthonormal_last=False)  # net[6] and every bias unconstrained
+@pytest.fixture(autouse=True)
+def _torch_compile_only(monkeypatch):
+    """These tests are about the torch.compile function: keep the native CPU
+    kernel (tests/speed/test_native_parity.py) out of the way."""
+    monkeypatch.setattr(compiled_mod, "_native_available", lambda opt, items: False)
+
+
+def _net(seed=0, dtype=torch.float64):
+    # rows, columns and whole-tensor FixedNorm; net[6] and every bias unconstrained
+    return fast_parity._net(seed, orthonormal_last=False).to(dtype)
 
 
 @pytest.fixture
@@ -40,8 +48,9 @@ def eager_kernel(monkeypatch):
     return calls
 
 
-def _pair(temperature, friction, **kwargs):
-    net = _net()
+def pair(temperature, friction, dtype=torch.float64, **kwargs):
+    """A network with ``compiled=True`` and a copy on the plain reference path."""
+    net = _net(dtype=dtype)
     ref_net = copy.deepcopy(net)
     opt = hn.Langevin(_groups(net, temperature, friction), step=0.1, friction=friction,
                       temperature=temperature, seed=5, compiled=True, **kwargs)
@@ -51,32 +60,39 @@ def _pair(temperature, friction, **kwargs):
     return net, opt, ref_net, ref
 
 
+def check_parity(calls, temperature, friction, steps=40, cold_group=False, halve_step_after=None):
+    """``steps`` steps of ``pair(temperature, friction)``, all through the kernel
+    that appends to ``calls``, agree with the reference to float64 roundoff.
+    ``cold_group``: group 1 at temperature 0 (only group 0 draws noise, in
+    parameter order); ``halve_step_after``: a step-size schedule."""
+    net, opt, ref_net, ref = pair(temperature, friction)
+    if cold_group:
+        for o in (opt, ref):
+            o.param_groups[1]["temperature"] = 0.0
+    data = _data()
+    for step in range(steps):
+        if step == halve_step_after:
+            for group in opt.param_groups + ref.param_groups:
+                group["lr"] *= 0.5
+        _run(net, opt, 1, data)
+        _run(ref_net, ref, 1, data)
+    assert len(calls) == steps  # every step went through the kernel
+    assert_same_run(net, opt, ref_net, ref)
+
+
 @pytest.mark.parametrize("temperature", [0.0, 0.4])
 @pytest.mark.parametrize("friction", [1.0, math.inf])
 def test_compiled_kernel_eager_matches_reference(eager_kernel, temperature, friction):
-    net, opt, ref_net, ref = _pair(temperature, friction)
-    data = _data()
-    _run(net, opt, 40, data)
-    _run(ref_net, ref, 40, data)
-    assert len(eager_kernel) == 40  # every step went through the kernel
-    assert_same_run(net, opt, ref_net, ref)
+    check_parity(eager_kernel, temperature, friction)
 
 
 def test_compiled_kernel_eager_mixed_temperatures_match_reference(eager_kernel):
-    # group 0 hot, group 1 cold: only group 0 draws noise, in parameter order
-    net, opt, ref_net, ref = _pair(0.4, 1.0)
-    for o in (opt, ref):
-        o.param_groups[1]["temperature"] = 0.0
-    data = _data()
-    _run(net, opt, 10, data)
-    _run(ref_net, ref, 10, data)
-    assert len(eager_kernel) == 10
-    assert_same_run(net, opt, ref_net, ref)
+    check_parity(eager_kernel, 0.4, 1.0, steps=10, cold_group=True)
 
 
 def test_compiled_path_steps_aside_for_what_it_does_not_cover(eager_kernel):
     # an Orthonormal parameter: the eager fast path takes the step, with the same result
-    net, opt, ref_net, ref = _pair(0.2, 1.0)
+    net, opt, ref_net, ref = pair(0.2, 1.0)
     hn.constrain(net[6], weight=hn.Orthonormal(over="rows"))
     hn.constrain(ref_net[6], weight=hn.Orthonormal(over="rows"))
     with torch.no_grad():
@@ -90,7 +106,7 @@ def test_compiled_path_steps_aside_for_what_it_does_not_cover(eager_kernel):
 
 
 def test_compiled_path_failure_changes_nothing(eager_kernel):
-    net, opt, _, _ = _pair(0.3, 1.0)
+    net, opt, _, _ = pair(0.3, 1.0)
     fast_parity.check_bad_gradient_changes_nothing(net, opt, float("nan"))
     assert len(eager_kernel) == 4  # the kernel ran, found the NaN, and wrote nothing
 
@@ -120,7 +136,7 @@ def test_error_inside_the_step_is_raised_with_nothing_changed(monkeypatch):
         raise MemoryError("out of memory")
 
     monkeypatch.setattr(compiled_mod, "_compiled_kernel", lambda: failing)
-    net, opt, _, _ = _pair(0.3, 1.0)
+    net, opt, _, _ = pair(0.3, 1.0)
     data = _data()
     x, y = data
     opt.zero_grad()
@@ -143,7 +159,7 @@ def test_compile_failure_warns_and_uses_eager_path(monkeypatch):
         raise RuntimeError("no C++ compiler")
 
     monkeypatch.setattr(compiled_mod, "_compiled_kernel", broken)
-    net, opt, ref_net, ref = _pair(0.0, 1.0)
+    net, opt, ref_net, ref = pair(0.0, 1.0)
     data = _data()
     with pytest.warns(RuntimeWarning, match="no C\\+\\+ compiler"):
         _run(net, opt, 1, data)
@@ -162,7 +178,7 @@ _HAVE_CXX = any(shutil.which(c) for c in (os.environ.get("CXX", ""), "g++", "cla
 def test_torch_compiled_step_matches_reference_float64():
     # the real torch.compile path (tens of seconds to compile on a small CPU)
     for temperature in (0.0, 0.4):
-        net, opt, ref_net, ref = _pair(temperature, 1.0)
+        net, opt, ref_net, ref = pair(temperature, 1.0)
         data = _data()
         _run(net, opt, 20, data)
         _run(ref_net, ref, 20, data)

@@ -86,17 +86,19 @@ def assert_same_run(fast_net, fast, ref_net, ref, same_iterations=lambda a, b: a
     assert max(hn.residuals(fast_net).values()) < 1e-13
 
 
-def test_fast_path_unconstrained_equals_torch_sgd():
-    # outside reference: torch.optim.SGD; Langevin.from_sgd at T = 0 is heavy-ball SGD exactly
+def check_unconstrained_equals_torch_sgd(n_in=5, n_out=3, **kwargs):
+    """Outside reference: torch.optim.SGD.  ``Langevin.from_sgd`` at T = 0 is
+    heavy-ball SGD exactly for unconstrained parameters (30 steps, float64)."""
     g = torch.Generator().manual_seed(2)
-    ours = nn.Linear(5, 3).double()
+    ours = nn.Linear(n_in, n_out).double()
     with torch.no_grad():
         for p in ours.parameters():
             p.copy_(torch.randn(p.shape, generator=g, dtype=torch.float64))
     theirs = copy.deepcopy(ours)
-    opt = hn.Langevin.from_sgd(ours.parameters(), lr=0.05, momentum=0.9, weight_decay=0.01)
+    opt = hn.Langevin.from_sgd(ours.parameters(), lr=0.05, momentum=0.9, weight_decay=0.01, **kwargs)
     sgd = torch.optim.SGD(theirs.parameters(), lr=0.05, momentum=0.9, weight_decay=0.01)
-    x, y = torch.randn(16, 5, generator=g, dtype=torch.float64), torch.randn(16, 3, generator=g, dtype=torch.float64)
+    x = torch.randn(16, n_in, generator=g, dtype=torch.float64)
+    y = torch.randn(16, n_out, generator=g, dtype=torch.float64)
     for _ in range(30):
         for net, o in ((ours, opt), (theirs, sgd)):
             o.zero_grad()
@@ -104,6 +106,10 @@ def test_fast_path_unconstrained_equals_torch_sgd():
             o.step()
     for a, b in zip(ours.parameters(), theirs.parameters()):
         assert torch.allclose(a, b, rtol=1e-12, atol=1e-12)
+
+
+def test_fast_path_unconstrained_equals_torch_sgd():
+    check_unconstrained_equals_torch_sgd()
 
 
 def _snapshot(net, opt):

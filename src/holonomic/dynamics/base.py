@@ -50,11 +50,37 @@ class ParameterStepInfo:
     tangent_dof: int
 
 
-@dataclass(frozen=True)
 class StepInfo:
-    """Diagnostics of the last step, one entry per parameter that moved."""
+    """Diagnostics of the last step, one entry per parameter that moved.
 
-    parameters: tuple[ParameterStepInfo, ...]
+    ``parameters`` is the tuple of :class:`ParameterStepInfo`, or a function
+    that builds it; it is then built on first access (the compiled step
+    defers this, so that a step pays nothing for diagnostics nobody reads).
+    """
+
+    __slots__ = ("_parameters", "_build")
+
+    def __init__(self, parameters: tuple[ParameterStepInfo, ...] | Callable[[], tuple[ParameterStepInfo, ...]]
+                 ) -> None:
+        if callable(parameters):
+            self._parameters, self._build = None, parameters
+        else:
+            self._parameters, self._build = tuple(parameters), None
+
+    @property
+    def parameters(self) -> tuple[ParameterStepInfo, ...]:
+        if self._parameters is None:
+            self._parameters, self._build = tuple(self._build()), None
+        return self._parameters
+
+    def __eq__(self, other: object) -> bool:
+        return isinstance(other, StepInfo) and self.parameters == other.parameters
+
+    def __hash__(self) -> int:
+        return hash(self.parameters)
+
+    def __repr__(self) -> str:
+        return f"StepInfo(parameters={self.parameters!r})"
 
 
 @dataclass

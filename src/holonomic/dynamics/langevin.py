@@ -98,13 +98,16 @@ class Langevin(ConstrainedOptimizer):
         substeps: split each A step into this many equal drifts (g-BAOAB
             with ``K`` RATTLE substeps when ``projection="rattle"``).
         compiled: run the step of fixed-norm and unconstrained parameters as
-            one ``torch.compile`` function (same arithmetic, about half the
-            memory traffic of the eager step; see
-            :mod:`holonomic.dynamics.compiled`).  The first step compiles
-            (tens of seconds on a small CPU) and needs a C++ compiler.  A
-            step with any parameter it does not cover (orthonormal, geodesic
-            or substepped groups, ...) runs eagerly as a whole, and so does
-            every step after a failure to compile (with a warning).
+            one compiled function (same arithmetic, about half the memory
+            traffic of the eager step; see
+            :mod:`holonomic.dynamics.compiled`).  On the CPU that is a C++
+            kernel built once with the system compiler (about two seconds,
+            then cached; :mod:`holonomic.dynamics.native`), elsewhere a
+            ``torch.compile`` function (tens of seconds to compile on a
+            small CPU; a C++ compiler is needed there too).  A step with any
+            parameter it does not cover (orthonormal, geodesic or substepped
+            groups, ...) runs eagerly as a whole, and so does every step
+            after a failure to build or compile (with a warning).
 
     Raises:
         ValueError: at construction, for a non-positive or NaN step,
