@@ -172,14 +172,24 @@ struct Step {
     }
   }
 
+  // Pointers to the first entry of an item's vector (or of the parameter).
+  struct Row {
+    T* w;
+    T* m;
+    const T* g;
+    const T* x;
+  };
+
+  static Row row(const Item& it, const Param& p) {
+    const int64_t at = it.row * p.row_stride;
+    return {static_cast<T*>(p.w) + at, static_cast<T*>(p.m) + at, static_cast<const T*>(p.g) + at,
+            p.x ? static_cast<const T*>(p.x) + at : nullptr};
+  }
+
   bool check(int64_t k) {
     const Item& it = items[k];
     const Param& p = params[it.param];
-    const int64_t at = it.row * p.row_stride;
-    const T* w = static_cast<const T*>(p.w) + at;
-    const T* m = static_cast<const T*>(p.m) + at;
-    const T* g = static_cast<const T*>(p.g) + at;
-    const T* x = p.x ? static_cast<const T*>(p.x) + at : nullptr;
+    const auto [w, m, g, x] = row(it, p);  // read only here
     if (p.sphere) {
       const T kick = static_cast<T>(p.h * p.scale);
       const int64_t st = p.elem_stride;
@@ -211,11 +221,7 @@ struct Step {
   void write(int64_t k) {
     const Item& it = items[k];
     const Param& p = params[it.param];
-    const int64_t at = it.row * p.row_stride;
-    T* w = static_cast<T*>(p.w) + at;
-    T* m = static_cast<T*>(p.m) + at;
-    const T* g = static_cast<const T*>(p.g) + at;
-    const T* x = p.x ? static_cast<const T*>(p.x) + at : nullptr;
+    const auto [w, m, g, x] = row(it, p);
     if (p.sphere) {
       const T kick = static_cast<T>(p.h * p.scale);
       const int64_t st = p.elem_stride;
