@@ -187,3 +187,31 @@ def test_build_is_cached_and_keyed_by_source(native_calls, tmp_path, monkeypatch
     changed.write_text(native._SOURCE.read_text() + "\n// changed\n")
     monkeypatch.setattr(native, "_SOURCE", changed)
     assert native._build(native._compiler(), tmp_path) != first  # another source, another file
+
+
+def test_default_takes_the_native_kernel_and_false_does_not(native_calls):
+    data = _data()
+    for compiled, expected in ((None, 3), (False, 0)):
+        native_calls.clear()
+        net = fast_parity._net(orthonormal_last=False)
+        _run(net, hn.Langevin(net.parameters(), step=0.1, temperature=0.2, compiled=compiled), 3, data)
+        assert len(native_calls) == expected
+
+
+def test_default_without_the_kernel_is_silently_eager(monkeypatch):
+    def unbuildable():
+        raise native.NativeBuildError("no C++ compiler found")
+
+    def no_torch_compile():
+        raise AssertionError("the default must not start torch.compile")
+
+    monkeypatch.setattr(native, "native_kernel", unbuildable)
+    monkeypatch.setattr(compiled_mod, "_compiled_kernel", no_torch_compile)
+    net, _, ref_net, ref = pair(0.3, 1.0)
+    opt = hn.Langevin(fast_parity._groups(net, 0.3, 1.0), step=0.1, temperature=0.3, seed=5)  # compiled=None
+    data = _data()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # no warning by default
+        _run(net, opt, 5, data)
+    _run(ref_net, ref, 5, data)
+    assert_same_run(net, opt, ref_net, ref)

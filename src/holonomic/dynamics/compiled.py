@@ -1,11 +1,12 @@
 r"""Optional compiled BAOAB step for fixed-norm and unconstrained parameters.
 
-``Langevin(..., compiled=True)`` runs the whole step of every parameter in one
-compiled function.  **On the CPU** (float32 and float64) that is a small C++
-kernel built at first use with the system compiler
-(:mod:`holonomic.dynamics.native`); **elsewhere**, or where that kernel cannot
-be built, it is :func:`baoab_kernel` compiled with ``torch.compile``
-(TorchInductor), described below.  Both compute the arithmetic of the eager
+``Langevin`` runs the whole step of every parameter in one compiled function
+unless ``compiled=False``.  **On the CPU** (float32 and float64) that is a
+small C++ kernel built at first use with the system compiler
+(:mod:`holonomic.dynamics.native`); this is the default (``compiled=None``).
+**Elsewhere**, or where that kernel cannot be built, ``compiled=True`` uses
+:func:`baoab_kernel` compiled with ``torch.compile`` (TorchInductor),
+described below, and the default uses the eager fast path.  Both compute the arithmetic of the eager
 fast path (:mod:`holonomic.dynamics.fast`): per vector the Gram entries of
 ``w``, ``q = p - h f`` (and the noise ``xi``), the closed-form SHAKE/RATTLE
 coefficients, and one write of the new position and momentum.  The
@@ -226,6 +227,8 @@ def compiled_baoab_step(opt: "Langevin", kernel: Callable[..., tuple[Tensor, Ten
         return True
     if kernel is None and _native_available(opt, items):
         return _native_step(opt, items)
+    if kernel is None and getattr(opt, "compiled", None) is None:
+        return False  # automatic: no torch.compile (slow to compile), the eager path instead
     saved = {k: g.get_state() for k, g in opt._generators.items()}
     try:
         if kernel is None:
@@ -249,15 +252,16 @@ def compiled_baoab_step(opt: "Langevin", kernel: Callable[..., tuple[Tensor, Ten
 
 
 def _native_available(opt: "Langevin", items: list) -> bool:
-    """The native kernel covers these parameters and could be built (a
-    failure to build is warned about once per optimizer)."""
+    """The native kernel covers these parameters and could be built (with
+    ``compiled=True``, a failure to build is warned about once per optimizer;
+    by default it is silent and the step runs eagerly)."""
     if not native.covers(items) or opt.__dict__.get("_native_failed"):
         return False
     try:
         native.native_kernel()
     except native.NativeBuildError as exc:
         opt._native_failed = True
-        if "HOLONOMIC_NATIVE=0" not in str(exc):
+        if getattr(opt, "compiled", None) is True and "HOLONOMIC_NATIVE=0" not in str(exc):
             warnings.warn(f"Langevin(compiled=True): the native CPU kernel is not available ({exc}); "
                           "using torch.compile instead", RuntimeWarning, stacklevel=5)
         return False

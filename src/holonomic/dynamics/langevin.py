@@ -97,17 +97,20 @@ class Langevin(ConstrainedOptimizer):
         weight_decay: Gaussian prior precision for unconstrained parameters.
         substeps: split each A step into this many equal drifts (g-BAOAB
             with ``K`` RATTLE substeps when ``projection="rattle"``).
-        compiled: run the step of fixed-norm and unconstrained parameters as
-            one compiled function (same arithmetic, about half the memory
-            traffic of the eager step; see
-            :mod:`holonomic.dynamics.compiled`).  On the CPU that is a C++
-            kernel built once with the system compiler (about two seconds,
-            then cached; :mod:`holonomic.dynamics.native`), elsewhere a
-            ``torch.compile`` function (tens of seconds to compile on a
-            small CPU; a C++ compiler is needed there too).  A step with any
-            parameter it does not cover (orthonormal, geodesic or substepped
-            groups, ...) runs eagerly as a whole, and so does every step
-            after a failure to build or compile (with a warning).
+        compiled: how the step of fixed-norm and unconstrained parameters
+            runs (see :mod:`holonomic.dynamics.compiled`; same arithmetic
+            everywhere, tested against the plain path).  ``None`` (default):
+            on the CPU, in float32 or float64, one call of a C++ kernel with
+            about the memory traffic of ``torch.optim.SGD``, built once with
+            the system compiler (about two seconds, then cached on disk;
+            :mod:`holonomic.dynamics.native`), and the eager fast path
+            everywhere else or when no compiler is found.  ``True``: the same
+            kernel on the CPU, and a ``torch.compile`` function elsewhere
+            (tens of seconds to compile; a failure to build or compile is
+            warned about once, then the step runs eagerly).  ``False``: always
+            the eager fast path.  A step with any parameter the kernels do
+            not cover (orthonormal, geodesic or substepped groups, ...) runs
+            eagerly as a whole.
 
     Raises:
         ValueError: at construction, for a non-positive or NaN step,
@@ -135,10 +138,10 @@ class Langevin(ConstrainedOptimizer):
         dataset_size: float | None = None,
         weight_decay: float = 0.0,
         substeps: int = 1,
-        compiled: bool = False,
+        compiled: bool | None = None,
     ) -> None:
-        if not isinstance(compiled, bool):
-            raise ValueError(f"compiled must be True or False, got {compiled!r}")
+        if compiled is not None and not isinstance(compiled, bool):
+            raise ValueError(f"compiled must be None (automatic), True or False, got {compiled!r}")
         defaults = dict(lr=check_positive("step", step), friction=friction, temperature=temperature,
                         projection=projection, dataset_size=dataset_size, weight_decay=weight_decay,
                         substeps=substeps)
@@ -188,7 +191,7 @@ class Langevin(ConstrainedOptimizer):
             raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
 
     def _take_step(self) -> None:
-        """The compiled path (when asked for), else the fast path
+        """The compiled path (unless ``compiled=False``), else the fast path
         (:mod:`holonomic.dynamics.fast`) for the BAOAB scheme, falling back to
         the plain path when a check fails."""
         if self._reference or self.scheme is not BAOAB or type(self)._update is not Langevin._update:
@@ -199,9 +202,9 @@ class Langevin(ConstrainedOptimizer):
             self._reference_step()
 
     def _use_compiled(self) -> bool:
-        """Asked for, not failed to compile, and ``force`` not overridden (the
-        compiled kernel computes the force itself)."""
-        return (getattr(self, "compiled", False) and not self.__dict__.get("_compile_failed", False)
+        """Not switched off, not failed to compile, and ``force`` not
+        overridden (the compiled kernels compute the force themselves)."""
+        return (getattr(self, "compiled", None) is not False and not self.__dict__.get("_compile_failed", False)
                 and type(self).force is ConstrainedOptimizer.force)
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):

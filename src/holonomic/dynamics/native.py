@@ -1,8 +1,9 @@
-r"""Native CPU kernel of the compiled BAOAB step (``Langevin(compiled=True)``).
+r"""Native CPU kernel of the compiled BAOAB step (``Langevin``'s default on the CPU).
 
-On the CPU, ``compiled=True`` runs the step of fixed-norm and unconstrained
-parameters in a small C++ kernel (``baoab_kernel.cpp``, shipped with the
-package) instead of a ``torch.compile`` function.  The arithmetic is the
+On the CPU, ``Langevin`` (unless ``compiled=False``) runs the step of
+fixed-norm and unconstrained parameters in a small C++ kernel
+(``baoab_kernel.cpp``, shipped with the package) instead of the eager fast
+path or a ``torch.compile`` function.  The arithmetic is the
 same closed form (:func:`holonomic.dynamics.fast.sphere_baoab_coefficients`);
 the Gram entries and the per-vector coefficients are computed in double
 precision for float32 parameters as well.  The kernel makes two passes over
@@ -31,8 +32,9 @@ compiler accepts them, and kept in ``$HOLONOMIC_CACHE_DIR`` (default
 its flags and this CPU's model and feature flags, so that a home directory
 shared by different machines never loads code built for another CPU.  Set
 ``HOLONOMIC_NATIVE=0`` to skip it.  When it cannot be built (no compiler, a
-read-only file system and no temporary directory, ...) the optimizer warns
-once and uses the ``torch.compile`` function.
+read-only file system and no temporary directory, ...) the default optimizer
+silently takes the eager fast path, and one with ``compiled=True`` warns once
+and uses the ``torch.compile`` function.
 
 **Threads.**  The kernel runs on ``torch.get_num_threads()`` OpenMP threads
 and runs serially for steps of fewer than 32768 numbers, where starting the
