@@ -14,7 +14,8 @@ def test_compare_reports_interleaved_ratios():
     calls = []
     out = compare(lambda: calls.append("a"), lambda: calls.append("b"), rounds=4, calls=2, warmup=1)
     assert calls[:2] == ["a", "b"]  # warm-up
-    assert calls[2:6] == ["a", "a", "b", "b"] and calls[6:10] == ["b", "b", "a", "a"]  # rounds alternate
+    # rounds alternate; each turn makes one untimed call, then the timed ones
+    assert calls[2:8] == ["a"] * 3 + ["b"] * 3 and calls[8:14] == ["b"] * 3 + ["a"] * 3
     assert out["rounds"] == 4 and out["q1"] <= out["ratio"] <= out["q3"]
     assert all(math.isfinite(out[k]) and out[k] > 0 for k in ("ratio", "a_ms", "b_ms"))
 

@@ -1,9 +1,9 @@
 r"""Speed of the constrained steps against plain ones, as ratios.
 
 Every figure is a ratio of two step functions timed side by side in one
-process: rounds alternate between them (A B A B ...), each round times a
-few calls, and the report gives the median ratio over rounds with its
-interquartile range.  Interleaving cancels slow drifts of the machine (other
+process: rounds alternate between them (A B, B A, ...), each turn makes one
+untimed call and then times a few calls, and the report gives the median
+ratio over rounds with its interquartile range.  Interleaving cancels slow drifts of the machine (other
 jobs, clocks); the spread says how much remains.  float32, CPU, the torch
 thread count is printed.  What the figures do not show: the speed of other
 hardware, other shapes, or a GPU.
@@ -65,7 +65,14 @@ Step = Callable[[], Any]
 
 def compare(a: Step, b: Step, *, rounds: int, calls: int = 1, warmup: int = 2) -> dict[str, float]:
     """Median over interleaved rounds of ``time(a) / time(b)`` with its quartiles,
-    plus the median seconds per call of each."""
+    plus the median seconds per call of each.
+
+    Each turn of a round makes one untimed call before its timed calls, so
+    that both sides are timed with their own data in the caches: otherwise
+    the side that runs second in a round starts with the other's data there
+    (on the benchmark MLP, one diagnostic run gave a ratio of 1.04 in rounds
+    where our step ran first and 1.76 where SGD did), and the median over
+    rounds lands anywhere between the two."""
     for _ in range(warmup):
         a()
         b()
@@ -73,6 +80,7 @@ def compare(a: Step, b: Step, *, rounds: int, calls: int = 1, warmup: int = 2) -
     for r in range(rounds):
         pair = []
         for f in ((a, b) if r % 2 == 0 else (b, a)):
+            f()
             start = time.perf_counter()
             for _ in range(calls):
                 f()

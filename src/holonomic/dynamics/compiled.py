@@ -71,7 +71,9 @@ from holonomic.dynamics import native
 from holonomic.dynamics.base import ParameterStepInfo, StepInfo, step_label
 from holonomic.dynamics.fast import (
     _abandon,
-    _fast_eligible,
+    _geometry_eligible,
+    _group_eligible,
+    _tensors_eligible,
     _noise,
     _vectors,
     scratch_buffer,
@@ -247,7 +249,7 @@ def compiled_baoab_step(opt: "Langevin", kernel: Callable[..., tuple[Tensor, Ten
     except BaseException:
         _abandon(opt, saved)
         raise
-    _commit(opt, items, fresh, kinetic.unbind)
+    _commit(opt, items, fresh, kinetic.unbind())
     return True
 
 
@@ -272,35 +274,32 @@ def _native_step(opt: "Langevin", items: list) -> bool:
     saved = {k: g.get_state() for k, g in opt._generators.items()}
     fresh: dict[Tensor, Tensor] = {}
     try:
-        ok, kinetic = native.native_step(opt, items, fresh)
+        ok, kinetic, labels = native.native_step(opt, items, fresh)
     except BaseException:
         _abandon(opt, saved)
         raise
     if not ok:  # nothing was written
         return _abandon(opt, saved)
+    for p, momentum in fresh.items():
+        opt.state[p]["momentum"] = momentum
     dtype = items[0][0].dtype
-    _commit(opt, items, fresh, lambda: torch.tensor(kinetic, dtype=dtype).unbind())
+    opt.last_info = StepInfo(lambda: _infos(labels, torch.tensor(kinetic, dtype=dtype).unbind()))
     return True
 
 
-def _commit(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor],
-            kinetic: Callable[[], Sequence[Tensor]]) -> None:
-    """Store the momenta of a first step and the step's diagnostics (built
-    when first read: after a step that moved many megabytes, the caches are
-    cold and this Python code is several times slower than usual)."""
+def _infos(labels: list, kinetic: Sequence[Tensor]) -> tuple[ParameterStepInfo, ...]:
+    return tuple(ParameterStepInfo(label, g_index, index, iterations, energy, dof)
+                 for (label, g_index, index, iterations, dof), energy in zip(labels, kinetic))
+
+
+def _commit(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor], kinetic: Sequence[Tensor]) -> None:
+    """Store the momenta of a first step and the step's diagnostics."""
     for p, momentum in fresh.items():
         opt.state[p]["momentum"] = momentum
-    key = [(id(p), id(geometry), id(group.get("param_names")), where, p.shape) for p, geometry, group, where in items]
-    cached = opt.__dict__.get("_step_labels")
-    if cached is None or cached[0] != key:  # labels and sizes kept while the parameters stay the same
-        cached = opt.__dict__["_step_labels"] = (key, [
-            (step_label(p, group.get("param_names"), g_index, index), g_index, index,
-             int(isinstance(geometry, FixedNorm)), geometry.tangent_dof(p.shape))
-            for p, geometry, group, (g_index, index) in items])
-    static = cached[1]
-    opt.last_info = StepInfo(lambda: tuple(
-        ParameterStepInfo(label, g_index, index, iterations, energy, dof)
-        for (label, g_index, index, iterations, dof), energy in zip(static, kinetic())))
+    opt.last_info = StepInfo(_infos([
+        (step_label(p, group.get("param_names"), g_index, index), g_index, index,
+         int(isinstance(geometry, FixedNorm)), geometry.tangent_dof(p.shape))
+        for p, geometry, group, (g_index, index) in items], kinetic))
 
 
 def _give_up(opt: "Langevin", saved: dict[str, Tensor], exc: BaseException) -> bool:
@@ -371,24 +370,28 @@ def _collect(opt: "Langevin") -> list[tuple[Tensor, Any, dict[str, Any], tuple[i
     cover one of them (module docstring)."""
     items = []
     seen: set[int] = set()
-    dtypes, devices = set(), set()
+    first = None
+    state = opt.state
     for g_index, group in enumerate(opt.param_groups):
         if not group["lr"] > 0:
             return None
+        eligible = _group_eligible(group)
         for index, p in enumerate(group["params"]):
             if p.grad is None:
                 continue
+            if not eligible:
+                return None
             if id(p) in seen:  # listed twice: the second update would see the first's writes
                 return None
             seen.add(id(p))
             geometry = constraint_of(p) or UNCONSTRAINED
             # the eager fast path's conditions, less the square orthonormal case it adds
-            if p.grad.is_sparse or isinstance(geometry, Orthonormal) or not _fast_eligible(
-                    p, geometry, group, opt.state[p]):
+            if isinstance(geometry, Orthonormal) or not (_tensors_eligible(p, state[p])
+                                                         and _geometry_eligible(p, geometry)):
                 return None
-            dtypes.add(p.dtype)
-            devices.add(p.device)
+            if first is None:
+                first = p
+            elif p.dtype != first.dtype or p.device != first.device:
+                return None
             items.append((p, geometry, group, (g_index, index)))
-    if len(dtypes) > 1 or len(devices) > 1:
-        return None
     return items

@@ -179,13 +179,24 @@ class _Entry:
 
 
 def _fast_eligible(p: Tensor, geometry: Any, group: dict[str, Any], state: dict[str, Any]) -> bool:
-    if group["projection"] != "rattle" or group["substeps"] != 1:
-        return False
-    if not (p.is_floating_point() and p.is_contiguous() and p.grad.is_contiguous()) or p.grad.dtype != p.dtype:
+    return _group_eligible(group) and _tensors_eligible(p, state) and _geometry_eligible(p, geometry)
+
+
+def _group_eligible(group: dict[str, Any]) -> bool:
+    return group["projection"] == "rattle" and group["substeps"] == 1
+
+
+def _tensors_eligible(p: Tensor, state: dict[str, Any]) -> bool:
+    """Dense, contiguous, floating weight, gradient and momentum of one dtype."""
+    grad = p.grad
+    if grad.is_sparse or not (p.is_floating_point() and p.is_contiguous() and grad.is_contiguous()) \
+            or grad.dtype != p.dtype:
         return False
     momentum = state.get("momentum")
-    if momentum is not None and not (momentum.is_contiguous() and momentum.dtype == p.dtype):
-        return False
+    return momentum is None or (momentum.is_contiguous() and momentum.dtype == p.dtype)
+
+
+def _geometry_eligible(p: Tensor, geometry: Any) -> bool:
     if isinstance(geometry, Orthonormal):
         return _square(p)
     return isinstance(geometry, Unconstrained) or (isinstance(geometry, FixedNorm) and p.dim() >= 1)

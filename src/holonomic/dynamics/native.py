@@ -58,6 +58,7 @@ from typing import TYPE_CHECKING, Any
 import torch
 from torch import Tensor
 
+from holonomic.dynamics.base import step_label
 from holonomic.dynamics.fast import _noise, _vectors
 from holonomic.dynamics.operators import ou_coefficients
 from holonomic.geometry import FixedNorm
@@ -185,34 +186,41 @@ def covers(items: list[tuple[Tensor, Any, dict[str, Any], tuple[int, int]]]) -> 
     return p.device.type == "cpu" and p.dtype in _DTYPES
 
 
-def native_step(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tuple[bool, list[float]]:
+def native_step(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tuple[bool, list[float], list]:
     """Run the kernel on ``items`` (as collected by the compiled path).
 
     Draws the noise in parameter order, allocates zero momenta of a first
     step into ``fresh`` (stored by the caller on success only), and returns
-    ``(ok, kinetic energies)``; nothing was written when ``ok`` is false.
-    The kernel's argument table is kept between steps while every pointer,
-    shape, constraint and group setting in it stays the same."""
-    lib = native_kernel()
+    ``(ok, kinetic energies, per-parameter labels)``, the labels as tuples
+    ``(label, group, index, projection iterations, tangent dof)``; nothing
+    was written when ``ok`` is false.  The kernel's argument table and the
+    labels are kept between steps while every pointer, shape, constraint,
+    position and group setting in them stays the same (after a step moved
+    megabytes the caches are cold, and rebuilding them costs several times
+    what it costs in a microbenchmark)."""
     key: list[Any] = []
     tensors = []
-    for p, geometry, group, _ in items:
+    for p, geometry, group, where in items:
         momentum = opt.state[p].get("momentum")
         if momentum is None:
             momentum = fresh[p] = torch.zeros_like(p, memory_format=torch.contiguous_format)
         noise = _noise(opt, p) if group["temperature"] > 0 else None
         tensors.append((momentum, noise))
         key.append((p.data_ptr(), p.grad.data_ptr(), momentum.data_ptr(), 0 if noise is None else noise.data_ptr(),
-                    p.shape, id(geometry), group["lr"], group["friction"], group["temperature"],
-                    group["dataset_size"], group["weight_decay"]))
+                    id(p), p.shape, id(geometry), where, id(group.get("param_names")), group["lr"],
+                    group["friction"], group["temperature"], group["dataset_size"], group["weight_decay"]))
     cached = opt.__dict__.get("_native_table")
     if cached is None or cached[0] != key:
-        cached = opt.__dict__["_native_table"] = (key, _table(items, tensors), (ctypes.c_double * len(items))())
-    _, table, kinetic = cached
-    numbers = sum(p.numel() for p, *_ in items)
-    fn = getattr(lib, _DTYPES[items[0][0].dtype])
-    ok = fn(table, len(items), kinetic, torch.get_num_threads(), int(numbers >= _PARALLEL_MIN))
-    return bool(ok), list(kinetic)
+        numbers = sum(p.numel() for p, *_ in items)
+        cached = opt.__dict__["_native_table"] = (
+            key, _table(items, tensors), (ctypes.c_double * len(items))(),
+            getattr(native_kernel(), _DTYPES[items[0][0].dtype]), int(numbers >= _PARALLEL_MIN), [
+                (step_label(p, group.get("param_names"), g_index, index), g_index, index,
+                 int(isinstance(geometry, FixedNorm)), geometry.tangent_dof(p.shape))
+                for p, geometry, group, (g_index, index) in items])
+    _, table, kinetic, fn, parallel, labels = cached
+    ok = fn(table, len(items), kinetic, torch.get_num_threads(), parallel)
+    return bool(ok), list(kinetic), labels
 
 
 def _table(items: list, tensors: list[tuple[Tensor, Tensor | None]]) -> ctypes.Array:
