@@ -215,3 +215,23 @@ def test_default_without_the_kernel_is_silently_eager(monkeypatch):
         _run(net, opt, 5, data)
     _run(ref_net, ref, 5, data)
     assert_same_run(net, opt, ref_net, ref)
+
+
+def test_a_failed_build_is_remembered_and_not_retried(monkeypatch, tmp_path):
+    builds = []
+    real = native._build
+
+    def counted(*args):
+        builds.append(1)
+        return real(*args)
+
+    monkeypatch.setenv("CXX", str(tmp_path / "no-such-compiler"))
+    monkeypatch.setattr(native, "_build", counted)
+    native.native_kernel.cache_clear()
+    try:
+        for _ in range(3):
+            with pytest.raises(native.NativeBuildError, match="no-such-compiler"):
+                native.native_kernel()
+        assert len(builds) == 1
+    finally:
+        native.native_kernel.cache_clear()

@@ -115,7 +115,11 @@ def _cache_dir() -> Path:
     if root:
         return Path(root)
     xdg = os.environ.get("XDG_CACHE_HOME")
-    return (Path(xdg) if xdg else Path.home() / ".cache") / "holonomic"
+    try:
+        base = Path(xdg) if xdg else Path.home() / ".cache"
+    except RuntimeError as exc:  # no home directory: let the caller build in a temporary one
+        raise OSError(f"no cache directory: {exc}") from exc
+    return base / "holonomic"
 
 
 _FLAG_SETS = (["-O3", "-march=native", "-fopenmp"], ["-O3", "-fopenmp"], ["-O3"])
@@ -150,33 +154,48 @@ def _build(compiler: str, directory: Path) -> Path:
     raise NativeBuildError("the C++ compiler failed:\n" + "\n\n".join(errors))
 
 
-@lru_cache(maxsize=None)
 def native_kernel() -> ctypes.CDLL:
     """The loaded kernel library (built on first use; see the module docstring).
+
+    The outcome is kept for the process: after a failure every later call
+    raises the same error at once (``native_kernel.cache_clear()`` retries).
 
     Raises:
         NativeBuildError: when it is switched off (``HOLONOMIC_NATIVE=0``) or
             cannot be built or loaded; the reason is in the message.
     """
+    outcome = _load()
+    if isinstance(outcome, NativeBuildError):
+        raise outcome
+    return outcome
+
+
+@lru_cache(maxsize=None)
+def _load() -> ctypes.CDLL | NativeBuildError:
     if os.environ.get("HOLONOMIC_NATIVE", "1").strip() in ("0", "false", "no", "off"):
-        raise NativeBuildError("switched off by HOLONOMIC_NATIVE=0")
-    compiler = _compiler()
+        return NativeBuildError("switched off by HOLONOMIC_NATIVE=0")
     try:
-        path = _build(compiler, _cache_dir())
-    except OSError:  # the cache is not writable: build for this process only
-        path = _build(compiler, Path(tempfile.mkdtemp(prefix="holonomic-")))
-    try:
+        compiler = _compiler()
+        try:
+            path = _build(compiler, _cache_dir())
+        except OSError:  # the cache is not writable: build for this process only
+            path = _build(compiler, Path(tempfile.mkdtemp(prefix="holonomic-")))
         lib = ctypes.CDLL(str(path))
-    except OSError as exc:
-        raise NativeBuildError(f"cannot load the built kernel {path}: {exc}") from exc
-    lib.holonomic_param_size.restype = ctypes.c_int64
-    if lib.holonomic_abi_version() != _ABI_VERSION or lib.holonomic_param_size() != ctypes.sizeof(_Param):
-        raise NativeBuildError(f"the kernel at {path} does not match this version of holonomic; delete it")
-    for name in _DTYPES.values():
-        fn = getattr(lib, name)
-        fn.argtypes = [ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p, ctypes.c_int64, ctypes.c_int64]
-        fn.restype = ctypes.c_int
-    return lib
+        lib.holonomic_param_size.restype = ctypes.c_int64
+        if lib.holonomic_abi_version() != _ABI_VERSION or lib.holonomic_param_size() != ctypes.sizeof(_Param):
+            return NativeBuildError(f"the kernel at {path} does not match this version of holonomic; delete it")
+        for name in _DTYPES.values():
+            fn = getattr(lib, name)
+            fn.argtypes = [ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p, ctypes.c_int64, ctypes.c_int64]
+            fn.restype = ctypes.c_int
+        return lib
+    except NativeBuildError as exc:
+        return exc
+    except Exception as exc:  # anything else that stops the build must not stop training
+        return NativeBuildError(f"{type(exc).__name__}: {exc}")
+
+
+native_kernel.cache_clear = _load.cache_clear  # type: ignore[attr-defined]
 
 
 def covers(items: list[tuple[Tensor, Any, dict[str, Any], tuple[int, int]]]) -> bool:
