@@ -1,6 +1,6 @@
-"""Parity of the native CPU kernel of ``Langevin(compiled=True)``
-(holonomic.dynamics.native) with the plain per-parameter reference path,
-plus failure behaviour and the build.
+"""Parity of the native CPU kernel (holonomic.dynamics.native; ``Langevin``'s
+default on the CPU, and ``compiled=True``) with the plain per-parameter
+reference path, plus failure behaviour, its argument cache and the build.
 
 The reference is the plain path of the same class (``opt._reference = True``);
 one outside check compares the kernel with ``torch.optim.SGD``.  The kernel
@@ -11,6 +11,7 @@ No timing assertions: speed is measured by ``python -m holonomic.bench``.
 import copy
 import math
 import warnings
+from pathlib import Path
 
 import pytest
 import torch
@@ -233,5 +234,66 @@ def test_a_failed_build_is_remembered_and_not_retried(monkeypatch, tmp_path):
             with pytest.raises(native.NativeBuildError, match="no-such-compiler"):
                 native.native_kernel()
         assert len(builds) == 1
+    finally:
+        native.native_kernel.cache_clear()
+
+
+def test_argument_table_follows_the_constraint_and_keeps_across_new_gradients(native_calls):
+    layer = nn.Linear(6, 5).double()
+    hn.constrain(layer, weight=hn.FixedNorm(1.0))
+    opt = hn.Langevin(layer.parameters(), step=0.05)
+    x = torch.randn(8, 6, generator=torch.Generator().manual_seed(0), dtype=torch.float64)
+
+    def step():
+        opt.zero_grad()  # set_to_none: new gradient tensors every step
+        layer(x).square().sum().backward()
+        opt.step()
+
+    step()
+    table = opt._native_table
+    step()
+    assert opt._native_table is table  # new gradients alone do not rebuild the table
+    # replaced twice between steps: the last object may reuse the first one's address
+    hn.constrain(layer, weight=hn.FixedNorm(2.0))
+    hn.constrain(layer, weight=hn.FixedNorm(1.2))
+    with torch.no_grad():
+        layer.weight.copy_(hn.constraint_of(layer.weight).project(layer.weight))
+    step()
+    assert torch.allclose(layer.weight.norm(dim=1), torch.full((5,), 1.2, dtype=torch.float64), rtol=1e-13, atol=0)
+    assert len(native_calls) == 3
+
+
+def test_momentum_of_another_shape_is_not_given_to_the_kernel(native_calls):
+    # e.g. from an incompatible checkpoint: the eager path raises; the kernel must not write past it
+    layer = nn.Linear(4, 3).double()
+    hn.constrain(layer, weight=hn.FixedNorm(1.0))
+    opt = hn.Langevin(layer.parameters(), step=0.05)
+    big = torch.zeros(40, dtype=torch.float64)
+    opt.state[layer.weight]["momentum"] = big[:2]
+    layer(torch.ones(2, 4, dtype=torch.float64)).sum().backward()
+    with pytest.raises(RuntimeError):
+        opt.step()
+    assert not native_calls and torch.count_nonzero(big) == 0
+
+
+def test_step_info_of_a_native_step_pickles():
+    import pickle
+
+    net = fast_parity._net(orthonormal_last=False)
+    opt = hn.Langevin(net.parameters(), step=0.1)
+    _run(net, opt, 1, _data())
+    info = pickle.loads(pickle.dumps(opt.last_info))
+    assert info == opt.last_info and len(info.parameters) == len(list(net.parameters()))
+
+
+def test_unwritable_cache_builds_in_a_temporary_directory(native_calls, monkeypatch):
+    # /proc exists and refuses new files even to root (Linux)
+    if not Path("/proc/self").exists():
+        pytest.skip("needs Linux /proc as an existing directory that refuses new files")
+    monkeypatch.setenv("HOLONOMIC_CACHE_DIR", "/proc")
+    native.native_kernel.cache_clear()
+    try:
+        assert native.native_kernel() is not None  # built in a temporary directory instead
+        assert not list(Path("/proc").glob("baoab-*"))
     finally:
         native.native_kernel.cache_clear()

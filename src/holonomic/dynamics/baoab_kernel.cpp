@@ -12,7 +12,8 @@
 //      the kinetic energy and a validity flag; per chunk of an unconstrained
 //      parameter: its new values computed, checked and their energy summed;
 //   2. only if every flag holds: the new position and momentum written.
-// If a flag fails nothing is written and the function returns 0.
+// If a flag fails nothing is written and the function returns 0; -1 if its
+// scratch could not be allocated (nothing written either).
 
 #include <cmath>
 #include <cstdint>
@@ -273,11 +274,19 @@ int holonomic_abi_version() { return 1; }
 int64_t holonomic_param_size() { return static_cast<int64_t>(sizeof(Param)); }
 
 int holonomic_baoab_float(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
-  return Step<float>(params, n).run(kinetic, threads, parallel);
+  try {
+    return Step<float>(params, n).run(kinetic, threads, parallel);
+  } catch (...) {  // the work list could not be allocated: nothing was written
+    return -1;
+  }
 }
 
 int holonomic_baoab_double(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
-  return Step<double>(params, n).run(kinetic, threads, parallel);
+  try {
+    return Step<double>(params, n).run(kinetic, threads, parallel);
+  } catch (...) {  // the work list could not be allocated: nothing was written
+    return -1;
+  }
 }
 
 }  // extern "C"

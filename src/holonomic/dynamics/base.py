@@ -82,6 +82,9 @@ class StepInfo:
     def __repr__(self) -> str:
         return f"StepInfo(parameters={self.parameters!r})"
 
+    def __reduce__(self) -> tuple[Any, ...]:  # pickles the built tuple, not the function
+        return (StepInfo, (self.parameters,))
+
 
 @dataclass
 class Pending:

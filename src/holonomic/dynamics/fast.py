@@ -187,13 +187,15 @@ def _group_eligible(group: dict[str, Any]) -> bool:
 
 
 def _tensors_eligible(p: Tensor, state: dict[str, Any]) -> bool:
-    """Dense, contiguous, floating weight, gradient and momentum of one dtype."""
+    """Dense, contiguous, floating weight, gradient and momentum of one dtype
+    (and a momentum of the weight's shape and device)."""
     grad = p.grad
     if grad.is_sparse or not (p.is_floating_point() and p.is_contiguous() and grad.is_contiguous()) \
             or grad.dtype != p.dtype:
         return False
     momentum = state.get("momentum")
-    return momentum is None or (momentum.is_contiguous() and momentum.dtype == p.dtype)
+    return momentum is None or (momentum.is_contiguous() and momentum.dtype == p.dtype
+                                and momentum.shape == p.shape and momentum.device == p.device)
 
 
 def _geometry_eligible(p: Tensor, geometry: Any) -> bool:

@@ -106,8 +106,9 @@ class Langevin(ConstrainedOptimizer):
             :mod:`holonomic.dynamics.native`), and the eager fast path
             everywhere else or when no compiler is found.  ``True``: the same
             kernel on the CPU, and a ``torch.compile`` function elsewhere
-            (tens of seconds to compile; a failure to build or compile is
-            warned about once, then the step runs eagerly).  ``False``: always
+            or where the kernel cannot be built (tens of seconds to compile;
+            each failure is warned about once: a failed build falls back to
+            torch.compile, a failed compile to the eager path).  ``False``: always
             the eager fast path.  A step with any parameter the kernels do
             not cover (orthonormal, geodesic or substepped groups, ...) runs
             eagerly as a whole.
