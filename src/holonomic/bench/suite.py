@@ -3,8 +3,8 @@ r"""Speed of the constrained steps against plain ones, as ratios.
 Every figure is a ratio of two step functions timed side by side in one
 process: rounds alternate between them (A B, B A, ...), each turn makes one
 untimed call and then times a few calls, and the report gives the median
-ratio over rounds with its interquartile range.  Interleaving cancels slow drifts of the machine (other
-jobs, clocks); the spread says how much remains.  float32, CPU, the torch
+ratio over rounds with its interquartile range.  Interleaving cancels slow
+drifts of the machine (other jobs, clocks); the spread says how much remains.  float32, CPU, the torch
 thread count is printed.  What the figures do not show: the speed of other
 hardware, other shapes, or a GPU.
 

@@ -17,7 +17,6 @@
 
 #include <cmath>
 #include <cstdint>
-#include <cstdlib>
 #include <vector>
 
 namespace {
@@ -265,6 +264,15 @@ struct Step {
   }
 };
 
+template <typename T>
+int take_step(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
+  try {
+    return Step<T>(params, n).run(kinetic, threads, parallel);
+  } catch (...) {  // the work list could not be allocated: nothing was written
+    return -1;
+  }
+}
+
 }  // namespace
 
 extern "C" {
@@ -274,19 +282,11 @@ int holonomic_abi_version() { return 1; }
 int64_t holonomic_param_size() { return static_cast<int64_t>(sizeof(Param)); }
 
 int holonomic_baoab_float(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
-  try {
-    return Step<float>(params, n).run(kinetic, threads, parallel);
-  } catch (...) {  // the work list could not be allocated: nothing was written
-    return -1;
-  }
+  return take_step<float>(params, n, kinetic, threads, parallel);
 }
 
 int holonomic_baoab_double(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
-  try {
-    return Step<double>(params, n).run(kinetic, threads, parallel);
-  } catch (...) {  // the work list could not be allocated: nothing was written
-    return -1;
-  }
+  return take_step<double>(params, n, kinetic, threads, parallel);
 }
 
 }  // extern "C"

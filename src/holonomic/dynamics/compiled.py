@@ -68,7 +68,7 @@ import torch
 from torch import Tensor
 
 from holonomic.dynamics import native
-from holonomic.dynamics.base import ParameterStepInfo, StepInfo, step_label
+from holonomic.dynamics.base import ParameterStepInfo, StepInfo
 from holonomic.dynamics.fast import (
     _abandon,
     _geometry_eligible,
@@ -296,10 +296,7 @@ def _commit(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor], kinetic: 
     """Store the momenta of a first step and the step's diagnostics."""
     for p, momentum in fresh.items():
         opt.state[p]["momentum"] = momentum
-    opt.last_info = StepInfo(_infos([
-        (step_label(p, group.get("param_names"), g_index, index), g_index, index,
-         int(isinstance(geometry, FixedNorm)), geometry.tangent_dof(p.shape))
-        for p, geometry, group, (g_index, index) in items], kinetic))
+    opt.last_info = StepInfo(_infos(native.step_labels(items), kinetic))
 
 
 def _give_up(opt: "Langevin", saved: dict[str, Tensor], exc: BaseException) -> bool:

@@ -52,7 +52,6 @@ import shutil
 import subprocess
 import tempfile
 import threading
-import warnings
 from functools import lru_cache
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -245,10 +244,7 @@ def native_step(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tu
         numbers = sum(p.numel() for p, *_ in items)
         cached = opt.__dict__["_native_table"] = (
             key, _table(items, [m for *_, m in tensors]), (ctypes.c_double * len(items))(),
-            getattr(native_kernel(), _DTYPES[items[0][0].dtype]), int(numbers >= _PARALLEL_MIN), [
-                (step_label(p, group.get("param_names"), g_index, index), g_index, index,
-                 int(isinstance(geometry, FixedNorm)), geometry.tangent_dof(p.shape))
-                for p, geometry, group, (g_index, index) in items])
+            getattr(native_kernel(), _DTYPES[items[0][0].dtype]), int(numbers >= _PARALLEL_MIN), step_labels(items))
     _, table, kinetic, fn, parallel, labels = cached
     for slot, (grad, noise, _) in zip(table, tensors):  # new tensors each step after zero_grad(set_to_none=True)
         slot.g = grad.data_ptr()
@@ -257,6 +253,15 @@ def native_step(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tu
     if ok < 0:  # nothing was written
         raise MemoryError("the native BAOAB kernel could not allocate its per-row scratch")
     return bool(ok), list(kinetic), labels
+
+
+def step_labels(items: list) -> list[tuple[str, int, int, int, int]]:
+    """``(label, group, index, projection iterations, tangent dof)`` of each
+    parameter of a compiled step (one projection for a fixed norm, none for a
+    free parameter)."""
+    return [(step_label(p, group.get("param_names"), g_index, index), g_index, index,
+             int(isinstance(geometry, FixedNorm)), geometry.tangent_dof(p.shape))
+            for p, geometry, group, (g_index, index) in items]
 
 
 def _table(items: list, momenta: list[Tensor]) -> ctypes.Array:
@@ -277,5 +282,5 @@ def _table(items: list, momenta: list[Tensor]) -> ctypes.Array:
         slot.rows, slot.len, slot.row_stride, slot.elem_stride, slot.sphere = rows, length, row_stride, elem_stride, sphere
         scale = group["dataset_size"] if group["dataset_size"] is not None else 1.0
         slot.h, slot.decay, slot.sigma, slot.scale, slot.wd, slot.r2 = (
-            h, decay, sigma if group["temperature"] > 0 else 0.0, scale, group["weight_decay"], r2)
+            h, decay, sigma, scale, group["weight_decay"], r2)
     return table
