@@ -21,7 +21,8 @@ every run of the arm, once trained, continues as a sampler from its trained weig
 The phase is part of the run: its results land in the same run record, written atomically
 with the rest, so resuming and sharding work as for training alone. Every seed draws the
 same number of samples, so the traces form a (seeds, samples) array per observable for the
-mixing diagnostics of the report (:func:`ensemble_summary`).
+mixing diagnostics of the report
+(:func:`holonomic.study.ensemble_report.ensemble_summary`).
 
 What it does not show: the ensemble averages draws from an *approximate* tempered posterior
 (finite step, mini-batch noise, a short chain from one trained point); chains that have not
@@ -37,7 +38,6 @@ import time
 from dataclasses import asdict
 from typing import Any
 
-import numpy as np
 import torch
 from torch import nn
 from torch.nn import functional as F
@@ -46,16 +46,12 @@ import holonomic as hn
 from holonomic.sampling import (
     PredictiveEnsemble,
     classification_metrics,
-    mixing_diagnostics,
     predict_probabilities,
-    rank_normalized_split_rhat,
 )
 from holonomic.study.arms import ArmSetup, constraint_residual
 from holonomic.study.config import EnsembleConfig, StudyConfig
-from holonomic.study.stats import paired_comparison
 
-__all__ = ["ENSEMBLE_METRICS", "TRACED", "ensemble_lines", "ensemble_summary",
-           "run_ensemble_phase", "skipped_phase"]
+__all__ = ["ENSEMBLE_METRICS", "TRACED", "run_ensemble_phase", "skipped_phase"]
 
 #: Metrics of the single network and of the ensemble (sampling.classification_metrics).
 ENSEMBLE_METRICS = ("accuracy", "nll", "ece", "entropy")
@@ -176,156 +172,3 @@ def skipped_phase(config: StudyConfig, ens: EnsembleConfig, n_train: int,
             "ensemble": {"val": dict(nan), "test": dict(nan)},
             "traces": {name: [] for name in TRACED}, "constraint_residual": math.nan,
             "wall_s": 0.0}
-
-
-# ---------------------------------------------------------------------------------------
-# Report
-
-
-def _diagnostics(traces: dict[str, np.ndarray]) -> dict[str, Any]:
-    """Mixing diagnostics per observable, seeds as chains, plus single-chain split R-hat."""
-    out: dict[str, Any] = {}
-    for name, chains in traces.items():
-        entry: dict[str, Any] = {"chains": int(chains.shape[0]),
-                                 "draws_per_chain": int(chains.shape[1])}
-        try:
-            summary = mixing_diagnostics({name: chains}, warn=False)[name]
-            entry.update(rhat=summary.rhat, ess=summary.ess, tau=summary.tau,
-                         warnings=list(summary.warnings))
-        except ValueError as exc:  # constant or too short traces
-            entry.update(rhat=math.nan, ess=math.nan, tau=math.nan,
-                         warnings=[f"{name}: no diagnostics ({exc})"])
-        singles = []
-        for row in chains:
-            try:
-                singles.append(rank_normalized_split_rhat(row))
-            except ValueError:
-                singles.append(math.nan)
-        entry["single_chain_rhat_max"] = float(max(singles)) if singles else math.nan
-        out[name] = entry
-    return out
-
-
-def ensemble_summary(config: StudyConfig, records: dict[str, dict],
-                     chosen: dict[str, Any]) -> dict[str, Any]:
-    """Per arm with an ensemble, at its chosen setting: single vs ensemble on the test split
-    (paired by seed: mean difference ensemble - single with a 95% t interval) and the mixing
-    diagnostics of the traced observables over the seeds' chains."""
-    from holonomic.study.runner import RunSpec
-
-    out: dict[str, Any] = {}
-    for arm in config.arms:
-        sel = chosen[arm.name]
-        if arm.ensemble is None or sel.index is None:
-            continue
-        runs = [records[RunSpec(arm.name, sel.index, sel.strength, s).key]["ensemble"]
-                for s in config.seeds]
-        ok = [(seed, r) for seed, r in zip(config.seeds, runs) if r["status"] == "ok"]
-        entry: dict[str, Any] = {
-            "strength": sel.strength,
-            "settings": runs[0]["settings"],
-            "sampler": runs[0]["sampler"],
-            "seeds_ok": [seed for seed, _ in ok],
-            "seeds_failed": {str(seed): r["message"] for seed, r in zip(config.seeds, runs)
-                             if r["status"] != "ok"},
-            "metrics": {},
-            "mixing": {},
-        }
-        if len(ok) >= 2:
-            for metric in ENSEMBLE_METRICS:
-                single = np.array([r["single"]["test"][metric] for _, r in ok])
-                ensemble = np.array([r["ensemble"]["test"][metric] for _, r in ok])
-                comp = paired_comparison(ensemble, single)
-                entry["metrics"][metric] = {"single_mean": float(single.mean()),
-                                            "ensemble_mean": float(ensemble.mean()),
-                                            "difference": comp.to_dict()}
-            traces = {name: np.array([r["traces"][name] for _, r in ok]) for name in TRACED}
-            entry["mixing"] = _diagnostics(traces)
-        out[arm.name] = entry
-    return out
-
-
-def _num(x: float, digits: int = 4) -> str:
-    return "n/a" if x is None or not math.isfinite(x) else f"{x:.{digits}f}"
-
-
-_LOWER_BETTER = {"nll": True, "ece": True, "accuracy": False, "entropy": None}
-
-
-def _reading(metric: str, comp: dict) -> str:
-    if comp["includes_zero"]:
-        return "cannot tell apart (interval includes 0)"
-    higher = comp["mean_difference"] > 0
-    better = _LOWER_BETTER[metric]
-    if better is None:
-        return f"ensemble {'higher' if higher else 'lower'} (neither is better by itself)"
-    good = higher != better
-    return f"ensemble {'higher' if higher else 'lower'} ({'better' if good else 'worse'})"
-
-
-def ensemble_lines(summary: dict[str, Any]) -> list[str]:
-    """The report's ensemble section (empty when no arm has an ensemble)."""
-    if not summary:
-        return []
-    lines = ["", "## Ensemble phase (sampling after training)", "",
-             "For the arms below every run continued after training as a sampler from its "
-             "trained weights, at temperature T on the tempered posterior of N x mean "
-             "training cross-entropy (+ N x the arm's weight decay as a Gaussian prior; the "
-             "constraint set itself for constraint arms), N = training-set size, mini-batches "
-             "as in training. The ensemble averages the predictive probabilities of the "
-             "samples; the single network is the trained network the sampler started from. "
-             "Test split, chosen setting, mean over seeds; difference = ensemble - single, "
-             "paired by seed, with a 95% t interval (scipy.stats.t)."]
-    for name, entry in summary.items():
-        s = entry["settings"]
-        lines += ["", f"### {name} (strength {entry['strength']:g})", "",
-                  f"- Sampler `{entry['sampler']}`, T = {s['temperature']:g}, {s['samples']} "
-                  f"samples every {s['every']} steps after a burn-in of {s['burn_in']} steps; "
-                  f"step {s['step']:.4g}, friction {s['friction']:.4g} (units of the force "
-                  "N x gradient).",
-                  f"- Seeds with a finished sampling phase: {len(entry['seeds_ok'])}"
-                  f"/{len(entry['seeds_ok']) + len(entry['seeds_failed'])}."]
-        for seed, message in entry["seeds_failed"].items():
-            lines.append(f"- Seed {seed}: {message}")
-        if not entry["metrics"]:
-            lines.append("- Fewer than 2 seeds finished: no comparison.")
-            continue
-        lines += ["", "| metric | single | ensemble | ensemble - single [95% CI] | reading |",
-                  "|---|---|---|---|---|"]
-        for metric, m in entry["metrics"].items():
-            d = m["difference"]
-            lines.append(f"| {metric} | {_num(m['single_mean'])} | {_num(m['ensemble_mean'])} "
-                         f"| {_num(d['mean_difference'])} [{_num(d['ci_low'])}, "
-                         f"{_num(d['ci_high'])}] | {_reading(metric, d)} |")
-        lines += ["", "Mixing of traced observables (one chain per seed):", "",
-                  "| observable | R-hat over seeds | max single-chain split R-hat | bulk ESS "
-                  "(all chains) | autocorrelation time (samples) |", "|---|---|---|---|---|"]
-        warned = []
-        for obs, mix in entry["mixing"].items():
-            lines.append(f"| {obs} | {_num(mix['rhat'], 3)} | "
-                         f"{_num(mix['single_chain_rhat_max'], 3)} | {_num(mix['ess'], 1)} | "
-                         f"{_num(mix['tau'], 2)} |")
-            warned += mix["warnings"]
-        if warned:
-            lines += [""] + [f"- Warning: {w}" for w in warned]
-    lines += ["", "What the ensemble numbers do and do not show:", "",
-              "- The samples come from an approximate posterior: finite step size, mini-batch "
-              "gradient noise (the adaptive sampler corrects its average effect on the kinetic "
-              "temperature only; plain Langevin runs hotter than T), short chains started at "
-              "the trained weights.",
-              "- The temperature is a choice: T = 1 is the Bayesian posterior of this model and "
-              "prior, T < 1 a cold posterior; other temperatures give other ensembles.",
-              "- Chains may not have mixed: R-hat above 1.01 or a small ESS means the ensemble "
-              "averages around each seed's starting mode, not over the posterior. R-hat over "
-              "seeds also compares chains on different data splits (different posteriors), so "
-              "it can exceed 1.01 even for chains that mixed; the single-chain split R-hat "
-              "compares the halves of each chain. The sampling phase is not audited; its end "
-              "constraint residual is in each run record.",
-              "- For the unconstrained parameters of the arms without weight decay (biases, "
-              "output layer, and every layer of `none`) the prior is flat, so T = 1 does not "
-              "define a proper posterior for them; the sampler's draws are still well "
-              "defined. Max-norm clipping after each step is not a sampler of a known law.",
-              "- One data set and one model; the ensemble's gain (or loss) may change with "
-              "the temperature, the chain length and the data. Ensemble and single network are "
-              "compared at the setting chosen for the single network."]
-    return lines

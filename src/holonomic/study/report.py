@@ -21,7 +21,8 @@ from scipy import stats as sps
 
 from holonomic.study import storage
 from holonomic.study.config import BASELINE_ARM, StudyConfig
-from holonomic.study.ensemble import ENSEMBLE_METRICS, ensemble_lines, ensemble_summary
+from holonomic.study.ensemble import ENSEMBLE_METRICS
+from holonomic.study.ensemble_report import ensemble_lines, ensemble_summary
 from holonomic.study.runner import _METRIC_NAMES, RunSpec, plan_runs
 from holonomic.study.stats import paired_comparison, wilcoxon_min_p
 
