@@ -44,7 +44,7 @@ def test_unknown_key_names_key_and_allowed(tiny_doc):
     ("data", "standardize", "yes", "'data.standardize' must be true or false"),
     ("data", "test_fraction", 1.5, "'data.test_fraction' must be < 1.0"),
     ("study", "seeds", 1, "'study.seeds' must be at least 2"),
-    ("study", "selection", "test_accuracy", "val_accuracy, val_loss"),
+    ("study", "selection", "test_accuracy", "val_accuracy, val_balanced_accuracy, val_macro_f1"),
 ])
 def test_wrong_type_or_value(tiny_doc, section, key, value, needle):
     tiny_doc[section][key] = value

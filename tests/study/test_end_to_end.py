@@ -77,7 +77,11 @@ def test_same_study_twice_identical_and_resume_matches(tmp_path, tiny_config, ti
 
     resumed = tmp_path / "resumed"
     calls = interrupt_after(tiny_config, resumed, 5)
-    assert sorted(p.stem for p in (resumed / "runs").iterdir()) == sorted(calls)
+    assert sorted(p.stem for p in (resumed / "runs").glob("*.json")) == sorted(calls)
+    # each finished run's weights are saved before its record (the record commits the run)
+    assert sorted(p.stem for p in (resumed / "runs").glob("*.pt")) == sorted(calls)
+    assert sorted(p.name for p in (resumed / "runs").iterdir()) == sorted(
+        f"{key}{suffix}" for key in calls for suffix in (".json", ".pt"))
     # a temporary left by a process killed mid-write (pid 2**22 + 1 is not running)
     stale = resumed / "runs" / f".{calls[0]}.json.{2 ** 22 + 1}.tmp"
     stale.write_text("{half a rec")

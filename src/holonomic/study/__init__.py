@@ -23,15 +23,19 @@ from holonomic.study.config import (
     parse_config,
 )
 from holonomic.study.demo import demo_config
+from holonomic.study.trained import class_probabilities, load_trained, predict
 
 __all__ = [
     "ARM_NAMES",
     "IncompleteStudyError",
     "StudyConfig",
     "StudyConfigError",
+    "class_probabilities",
     "demo_config",
     "load_config",
+    "load_trained",
     "parse_config",
+    "predict",
     "report_study",
     "run_study",
 ]
@@ -71,9 +75,10 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     :class:`StudyConfigError`.
     """
     from holonomic.study import storage
-    from holonomic.study.runner import plan_runs, run_all
+    from holonomic.study.runner import check_selection, plan_runs, run_all
     from holonomic.study.sharding import shard_runs
 
+    check_selection(config)  # a selection metric the task lacks: refused before any output
     Path(out_dir).mkdir(parents=True, exist_ok=True)
     storage.write_study_record(out_dir, _definition(config), None if shard is None else shard[1])
     if shard is None:

@@ -2,7 +2,8 @@
 
 A study file has five tables and an optional sixth::
 
-    [study]   name, seeds, selection
+    [study]   name, seeds, selection (val_<metric> of the task; default val_accuracy for
+              classification, val_rmse for regression: see selection_metric)
     [data]    source, target, train_size, val_fraction, test_fraction, standardize
     [model]   widths, activation   (or factory = "package.module:function")
     [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
@@ -42,6 +43,7 @@ __all__ = [
     "StudyConfigError",
     "load_config",
     "parse_config",
+    "selection_metric",
 ]
 
 #: Arms a study may list, in the order they appear in reports.
@@ -52,7 +54,13 @@ ACTIVATIONS = ("relu", "tanh", "gelu", "silu")
 SCHEDULES = ("constant", "cosine")
 PROJECTIONS = ("rattle", "geodesic")
 DTYPES = ("float32", "float64")
-SELECTION_METRICS = ("val_accuracy", "val_loss")
+#: Every ``study.selection`` any task accepts: ``val_<metric>`` for the metrics of
+#: :class:`holonomic.study.tasks.Task` (ROC AUC for two classes only; rmse, r2, mae for
+#: regression only); :func:`selection_metric` checks the choice against the study's task.
+SELECTION_METRICS = ("val_accuracy", "val_balanced_accuracy", "val_macro_f1", "val_roc_auc",
+                     "val_loss", "val_rmse", "val_r2", "val_mae")
+#: ``study.selection`` when the study file gives none, per task.
+DEFAULT_SELECTION = {"classification": "val_accuracy", "regression": "val_rmse"}
 #: Default audit interval (optimizer steps between audit records of a run). The audit reads
 #: its state every step (cheap: no host synchronisation) and writes a record every
 #: ``every`` steps plus one at the end of the run.
@@ -208,7 +216,8 @@ class StudyConfig:
     model: ModelConfig
     budget: BudgetConfig
     arms: tuple[ArmConfig, ...]
-    selection: str = "val_accuracy"
+    #: ``study.selection`` as given (None: the task's default, see :func:`selection_metric`).
+    selection: str | None = None
     base_dir: str = "."
     audit_every: int = DEFAULT_AUDIT_EVERY
 
@@ -557,7 +566,7 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
     config = StudyConfig(
         name=_get_str(study, "name", "study", default_name),
         seeds=_parse_seeds(study),
-        selection=_get_str(study, "selection", "study", "val_accuracy", SELECTION_METRICS),
+        selection=_get_str(study, "selection", "study", None, SELECTION_METRICS),
         data=_parse_data(_get_table(doc, "data"), base),
         model=_parse_model(_get_table(doc, "model")),
         budget=_parse_budget(_get_table(doc, "budget")),
@@ -565,7 +574,17 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
         base_dir=str(base),
         audit_every=_parse_audit(_get_table(doc, "audit")),
     )
+    declared_task = getattr(config.data, "task", None)
+    if declared_task is not None:  # data.task given: check the selection now, not at start
+        selection_metric(config, declared_task)
+    folds = getattr(config.data, "folds", None) or 1
     for arm in config.arms:
+        if arm.ensemble is not None and folds > 1:
+            raise _fail(f"'arms.{arm.name}.ensemble' cannot be combined with 'data.folds' = "
+                        f"{folds}: the chains of the folds sample different posteriors and "
+                        "their traces cannot be pooled for the mixing diagnostics; use a "
+                        "hold-out split (remove 'data.folds') for the ensemble phase, or "
+                        f"remove [arms.{arm.name}.ensemble]")
         if (arm.ensemble is not None and arm.ensemble.sampler == "adaptive"
                 and arm.ensemble.friction is None
                 and not math.isfinite(config.budget.step_friction()[1])):
@@ -573,6 +592,43 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
                         "0 gives infinite friction, which the adaptive sampler cannot start "
                         "from; give a finite friction or sampler = \"langevin\"")
     return config
+
+
+def selection_metric(config: StudyConfig, task: Any) -> str:
+    """The validation metric that chooses each arm's setting: ``study.selection``, or the
+    task's default (``val_accuracy`` for classification, ``val_rmse`` for regression).
+
+    ``task``: a :class:`holonomic.study.tasks.Task` (its metrics decide, so ``val_roc_auc``
+    needs two classes), or a task name (``"classification"`` / ``"regression"``; with a
+    name only, ROC AUC is allowed for classification since the classes are not known yet).
+    Larger is better per :meth:`holonomic.study.tasks.Task.higher_is_better` of the name
+    without ``val_``.
+
+    Raises:
+        StudyConfigError: the metric is not one this task records; the message names
+            ``study.selection`` and the allowed values for the task.
+    """
+    if isinstance(task, str):
+        from holonomic.study.tasks import TASKS, Task
+
+        if task not in TASKS:
+            raise _fail(f"unknown task {task!r}; allowed: {', '.join(TASKS)}")
+        name = task
+        metrics = Task(task, 2).metrics if task == "classification" else Task(task).metrics
+        described = task
+    else:
+        name, metrics = task.name, task.metrics
+        described = (f"classification with {task.n_classes} classes"
+                     if name == "classification" else name)
+    if config.selection is None:
+        return DEFAULT_SELECTION[name]
+    allowed = tuple(f"val_{m}" for m in metrics)
+    if config.selection not in allowed:
+        hint = (" (ROC AUC is defined for two classes only)"
+                if config.selection == "val_roc_auc" and name == "classification" else "")
+        raise _fail(f"'study.selection' = {config.selection!r} is not a metric of this study's "
+                    f"task ({described}){hint}; allowed for this task: {', '.join(allowed)}")
+    return config.selection
 
 
 def load_config(path: str | Path) -> StudyConfig:

@@ -5,24 +5,41 @@ every run of the arm, once trained, continues as a sampler from its trained weig
 
 .. code-block:: text
 
-    input: trained model W0, arm (constraints, weight decay lambda, max-norm clipping),
-           N training rows, temperature T, burn-in b, thinning k, samples J
-    single <- softmax(model_W0(x))  on validation and test inputs
+    input: trained model W0, task (loss L), arm (constraints, weight decay lambda,
+           max-norm clipping), N training rows, temperature T, burn-in b, thinning k,
+           samples J
+    single <- eval-mode prediction of model_W0 on validation and test inputs
     sampler <- AdaptiveLangevin or Langevin(step, friction, T, dataset_size=N,
                                             weight_decay=N lambda, seed from the run seed)
-    for t = 1 .. b + J k:                          # mini-batches as in training
-        zero_grad; mean cross-entropy on the batch; backward; sampler.step(); arm after-step
-        if t > b and (t - b) mod k == 0:           # sample j
-            S <- S + softmax(model(x))             # holonomic.sampling.PredictiveEnsemble
-            trace: full training loss, output-layer weight norm
-    ensemble <- S / J
-    return metrics (accuracy, NLL, ECE, entropy) of single and ensemble, traces
+    for t = 1 .. b + J k:                          # mini-batches as in training, train mode
+        zero_grad; task loss on the batch; backward; sampler.step(); arm after-step
+        if t > b and (t - b) mod k == 0:           # sample j, eval mode
+            classification: S <- S + softmax(model(x))    # holonomic.sampling.PredictiveEnsemble
+            regression:     S1 <- S1 + f(x);  S2 <- S2 + f(x)^2
+            trace: task loss over the training split, output-layer weight norm
+    classification: ensemble <- S / J
+    regression: mean mu = S1 / J; variance v = T + (S2 / J - mu^2)
+    return metrics of single and ensemble (:func:`ensemble_metrics`), traces
+
+Classification metrics: accuracy, NLL, ECE (15 bins), entropy
+(:func:`holonomic.sampling.classification_metrics`). Regression metrics: RMSE, R^2, MAE of
+the predictive mean, and the Gaussian negative log-likelihood
+:math:`\frac1n\sum_i \tfrac12\log(2\pi v_i) + (y_i - \mu_i)^2 / (2 v_i)` of the predictive
+distribution, all in the target's units (standardised mean and variance mapped back with the
+training split's mean ``m`` and standard deviation ``s``: :math:`m + s\mu`, :math:`s^2 v`).
+The predictive variance is the noise variance of the likelihood the sampler targets,
+:math:`\sigma^2 = T` in standardised units (the loss is half the mean squared error, so
+``dataset_size = N`` at temperature ``T`` is a Gaussian likelihood of variance ``T``; see
+:mod:`holonomic.study.tasks`), plus the variance of the sampled networks' means. The single
+network's NLL uses the same noise variance ``T`` (and no spread), so the two are compared
+under one likelihood.
 
 The phase is part of the run: its results land in the same run record, written atomically
 with the rest, so resuming and sharding work as for training alone. Every seed draws the
 same number of samples, so the traces form a (seeds, samples) array per observable for the
 mixing diagnostics of the report
-(:func:`holonomic.study.ensemble_report.ensemble_summary`).
+(:func:`holonomic.study.ensemble_report.ensemble_summary`). Ensembles are not combined with
+k-fold data (refused when the study file is read).
 
 What it does not show: the ensemble averages draws from an *approximate* tempered posterior
 (finite step, mini-batch noise, a short chain from one trained point); chains that have not
@@ -38,9 +55,9 @@ import time
 from dataclasses import asdict
 from typing import Any
 
+import numpy as np
 import torch
 from torch import nn
-from torch.nn import functional as F
 
 import holonomic as hn
 from holonomic.sampling import (
@@ -50,16 +67,28 @@ from holonomic.sampling import (
 )
 from holonomic.study.arms import ArmSetup, constraint_residual
 from holonomic.study.config import EnsembleConfig, StudyConfig
+from holonomic.study.tasks import Task, regression_scores
 
-__all__ = ["ENSEMBLE_METRICS", "TRACED", "run_ensemble_phase", "skipped_phase"]
+__all__ = ["ENSEMBLE_METRICS", "REGRESSION_ENSEMBLE_METRICS", "TRACED", "ensemble_metrics",
+           "run_ensemble_phase", "skipped_phase"]
 
-#: Metrics of the single network and of the ensemble (sampling.classification_metrics).
+#: Metrics of the single network and of the ensemble for classification
+#: (sampling.classification_metrics).
 ENSEMBLE_METRICS = ("accuracy", "nll", "ece", "entropy")
+#: The same for regression: of the predictive mean, and the Gaussian NLL (target units).
+REGRESSION_ENSEMBLE_METRICS = ("rmse", "r2", "mae", "nll")
 #: Scalar observables traced at every sample.
 TRACED = ("train_loss", "weight_norm_output")
 ECE_BINS = 15
 #: Offset that makes the sampler's noise independent of the training noise of the same seed.
 _SAMPLER_SEED_OFFSET = 7_919
+
+
+def ensemble_metrics(task: Task | str | None = None) -> tuple[str, ...]:
+    """Metric names of the phase's ``single`` and ``ensemble`` entries for ``task`` (a
+    :class:`~holonomic.study.tasks.Task` or a task name; None: classification)."""
+    name = task if isinstance(task, str) or task is None else task.name
+    return REGRESSION_ENSEMBLE_METRICS if name == "regression" else ENSEMBLE_METRICS
 
 
 def _sampler(model: nn.Module, ens: EnsembleConfig, config: StudyConfig, setup: ArmSetup,
@@ -82,42 +111,85 @@ def _output_norm(model: nn.Module) -> float:
         return float(output.weight.norm())
 
 
-def _metrics(probs: torch.Tensor, labels: torch.Tensor) -> dict[str, float]:
-    return classification_metrics(probs, labels, ECE_BINS)
+def _metrics(probs: torch.Tensor, labels: Any) -> dict[str, float]:
+    return classification_metrics(probs, torch.as_tensor(np.asarray(labels)), ECE_BINS)
+
+
+def _moments(outputs: torch.Tensor) -> torch.Tensor:
+    """A regression network's prediction and its square, float64 (n, 2): averaged by the
+    collector into the first two moments over the samples."""
+    f = outputs.reshape(-1, 1).to(torch.float64)
+    return torch.cat([f, f * f], dim=1)
+
+
+def _regression_metrics(mean: torch.Tensor, variance: torch.Tensor, y: Any,
+                        task: Task) -> dict[str, float]:
+    """RMSE, R^2, MAE of the predictive mean and the Gaussian NLL, in target units, from a
+    standardised predictive mean and variance."""
+    y = np.asarray(y, dtype=np.float64)
+    mu = task.target_mean + task.target_std * mean.numpy()
+    var = variance.numpy() * task.target_std ** 2
+    out = regression_scores(y, mu)
+    out["nll"] = float(np.mean(0.5 * np.log(2.0 * np.pi * var) + (y - mu) ** 2 / (2.0 * var)))
+    return {m: out[m] for m in REGRESSION_ENSEMBLE_METRICS}
 
 
 def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Module,
                        setup: ArmSetup, data: dict[str, tuple[torch.Tensor, torch.Tensor]],
-                       seed: int, first_epoch: int) -> dict[str, Any]:
+                       seed: int, first_epoch: int, task: Task | None = None,
+                       targets: dict[str, Any] | None = None) -> dict[str, Any]:
     """Sample from the trained ``model`` (changed in place) and return the phase's record.
 
-    ``data`` maps ``"train"``, ``"val"``, ``"test"`` to (inputs, labels); mini-batches
-    follow :func:`holonomic.study.runner.epoch_order` from epoch ``first_epoch`` on (the
-    epochs after training). Keys of the result: ``settings`` (as configured and as
-    resolved), ``status`` (``ok``, ``failed``: an integration step failed, ``diverged``: a
-    non-finite loss), ``message``, ``steps_done``, ``samples``, ``single`` and ``ensemble``
-    (``{"val": metrics, "test": metrics}``; ensemble metrics NaN unless ``ok``), ``traces``
-    (observable -> list of one value per sample), ``constraint_residual`` after sampling,
-    ``wall_s``.
+    ``data`` maps ``"train"``, ``"val"``, ``"test"`` to (inputs, training targets: labels,
+    or standardised regression targets); ``targets`` maps ``"val"`` and ``"test"`` to the
+    labels or original-unit targets the metrics compare with (default: the labels of
+    ``data``); ``task`` defaults to classification. Mini-batches follow
+    :func:`holonomic.study.runner.epoch_order` from epoch ``first_epoch`` on (the epochs
+    after training). Keys of the result: ``settings`` (as configured and as resolved),
+    ``status`` (``ok``, ``failed``: an integration step failed, ``diverged``: a non-finite
+    loss), ``message``, ``steps_done``, ``samples``, ``single`` and ``ensemble``
+    (``{"val": metrics, "test": metrics}`` with the names of :func:`ensemble_metrics`;
+    ensemble metrics NaN unless ``ok``), ``traces`` (observable -> list of one value per
+    sample), ``constraint_residual`` after sampling, ``wall_s``.
     """
-    from holonomic.study.runner import epoch_order, minibatch_step
+    from holonomic.study.runner import epoch_order, evaluation_mode, minibatch_step
 
     started = time.perf_counter()
     x_train, y_train = data["train"]
     n_train = len(y_train)
+    if task is None:
+        task = Task("classification", int(torch.max(y_train)) + 1)
+    if targets is None:
+        targets = {part: data[part][1].numpy() for part in ("val", "test")}
+    regression = task.is_regression
     x_eval = torch.cat([data["val"][0], data["test"][0]])
     n_val = len(data["val"][1])
-    single_probs = predict_probabilities(model, x_eval)
-    single = {"val": _metrics(single_probs[:n_val], data["val"][1]),
-              "test": _metrics(single_probs[n_val:], data["test"][1])}
+    temperature = ens.temperature
+
+    def scores(prediction: torch.Tensor, variance: torch.Tensor | None) -> dict[str, dict]:
+        if regression:
+            return {"val": _regression_metrics(prediction[:n_val], variance[:n_val],
+                                               targets["val"], task),
+                    "test": _regression_metrics(prediction[n_val:], variance[n_val:],
+                                                targets["test"], task)}
+        return {"val": _metrics(prediction[:n_val], targets["val"]),
+                "test": _metrics(prediction[n_val:], targets["test"])}
+
+    if regression:  # predict_probabilities: eval mode, no gradients, mode restored
+        single_mean = predict_probabilities(model, x_eval, to_probs=_moments)[:, 0]
+        single = scores(single_mean, torch.full_like(single_mean, temperature))
+    else:
+        single = scores(predict_probabilities(model, x_eval), None)
 
     sampler, resolved = _sampler(model, ens, config, setup, n_train, seed)
     burn_in = resolved["burn_in"]
     total = burn_in + ens.samples * ens.every
-    collector = PredictiveEnsemble(model, x_eval, burn_in=burn_in, every=ens.every)
+    collector = PredictiveEnsemble(model, x_eval, burn_in=burn_in, every=ens.every,
+                                   to_probs=_moments if regression else None)
     traces: dict[str, list[float]] = {name: [] for name in TRACED}
     batch = config.budget.batch_size
     status, message, step, epoch = "ok", "", 0, first_epoch
+    model.train()
     try:
         while step < total:
             order = epoch_order(n_train, seed, epoch)
@@ -126,11 +198,11 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
                 if step == total:
                     break
                 minibatch_step(model, sampler, setup, x_train, y_train,
-                               order[start:start + batch], f"sampling step {step}")
+                               order[start:start + batch], f"sampling step {step}", task.loss)
                 step += 1
-                if collector.observe():
-                    with torch.no_grad():
-                        train_loss = float(F.cross_entropy(model(x_train), y_train))
+                if collector.observe():  # collects in eval mode
+                    with evaluation_mode(model):
+                        train_loss = float(task.loss(model(x_train), y_train))
                     traces["train_loss"].append(train_loss)
                     traces["weight_norm_output"].append(_output_norm(model))
     except hn.IntegrationError as exc:
@@ -139,11 +211,14 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
         status, message = "diverged", str(exc)
     if status == "ok" and not all(math.isfinite(v) for t in traces.values() for v in t):
         status, message = "diverged", "non-finite traced observable"
-    nan = {name: math.nan for name in ENSEMBLE_METRICS}
+    nan = {name: math.nan for name in ensemble_metrics(task)}
     if status == "ok":
-        probs = collector.mean_probs()
-        ensemble = {"val": _metrics(probs[:n_val], data["val"][1]),
-                    "test": _metrics(probs[n_val:], data["test"][1])}
+        mean = collector.mean_probs()
+        if regression:
+            spread = (mean[:, 1] - mean[:, 0] ** 2).clamp_min(0.0)
+            ensemble = scores(mean[:, 0], spread + temperature)
+        else:
+            ensemble = scores(mean, None)
     else:
         ensemble = {"val": dict(nan), "test": dict(nan)}
     return {
@@ -162,9 +237,9 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
 
 
 def skipped_phase(config: StudyConfig, ens: EnsembleConfig, n_train: int,
-                  reason: str) -> dict[str, Any]:
+                  reason: str, task: Task | str | None = None) -> dict[str, Any]:
     """The phase's record when training did not finish (nothing to sample from)."""
-    nan = {name: math.nan for name in ENSEMBLE_METRICS}
+    nan = {name: math.nan for name in ensemble_metrics(task)}
     return {"settings": {**asdict(ens), **ens.resolved(config.budget, n_train)},
             "sampler": "AdaptiveLangevin" if ens.sampler == "adaptive" else "Langevin",
             "status": "skipped", "message": f"not sampled: {reason}", "steps_done": 0,

@@ -20,7 +20,7 @@ import numpy as np
 from scipy import stats as sps
 
 from holonomic.study import storage
-from holonomic.study.config import BASELINE_ARM, StudyConfig
+from holonomic.study.config import BASELINE_ARM, StudyConfig, selection_metric
 from holonomic.study.ensemble import ENSEMBLE_METRICS
 from holonomic.study.ensemble_report import ensemble_lines, ensemble_summary
 from holonomic.study.runner import _METRIC_NAMES, RunSpec, plan_runs
@@ -56,15 +56,28 @@ def _metric(record: dict, name: str) -> float:
     return float(record["metrics"][name])
 
 
+def _selection(config: StudyConfig, records: dict[str, dict]) -> str:
+    """The resolved ``study.selection`` for the task the records were trained on."""
+    from holonomic.study.tasks import Task
+
+    record = next(iter(records.values()), {})
+    name = record.get("task", "classification")
+    return selection_metric(config, Task(name, int(record.get("n_classes", 2)))
+                            if name == "classification" else name)
+
+
 def select_settings(config: StudyConfig, records: dict[str, dict]) -> dict[str, Selection]:
     """Choose each arm's setting by the mean validation metric over seeds (only)."""
-    larger_better = config.selection == "val_accuracy"
+    from holonomic.study.tasks import Task
+
+    selection = _selection(config, records)
+    larger_better = Task.higher_is_better(selection[len("val_"):])
     chosen = {}
     for arm in config.arms:
         means = []
         for i in range(len(arm.grid)):
             values = [_metric(records[RunSpec(arm.name, i, arm.grid[i], seed).key],
-                              config.selection) for seed in config.seeds]
+                              selection) for seed in config.seeds]
             means.append(float(np.mean(values)) if all(map(math.isfinite, values)) else math.nan)
         best = None
         for i, m in enumerate(means):
@@ -214,8 +227,9 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
     return {
         "study": config.to_dict(),
         "protocol": {
-            "selection": f"mean {config.selection} over seeds, per arm (larger accuracy / "
-                         "smaller loss wins; ties go to the earlier grid point)",
+            "selection": f"mean {_selection(config, records)} over seeds, per arm (larger "
+                         "accuracy / smaller loss wins; ties go to the earlier grid point)",
+            "selection_metric": _selection(config, records),
             "test_metrics": "computed for every run and stored in results.csv; never used for "
                             "selection; reported only for the chosen settings",
             "paired_by": "seed (same split, initial weights, minibatch order and noise)",
@@ -323,7 +337,8 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
               "biases are never constrained or clipped. Weight decay acts on every parameter.",
               ""]
     lines += ["## Protocol", "",
-              f"- Each arm's setting is the grid point with the best mean `{config.selection}` "
+              f"- Each arm's setting is the grid point with the best mean "
+              f"`{summary['protocol']['selection_metric']}` "
               "over seeds (validation split only).",
               "- Test metrics were computed for every run (they are in `results.csv`, so "
               "resuming needs no recomputation) but were never used to choose a setting; "
@@ -331,7 +346,8 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
               "- Gap: `gap_accuracy` = train accuracy - test accuracy; `gap_loss` = test loss "
               "- train loss. ECE: 15 equal-width confidence bins on the test split.", ""]
     lines += ["## Validation means per setting (used for the choice)", "",
-              f"| arm | grid | mean {config.selection} per grid point | chosen |",
+              f"| arm | grid | mean {summary['protocol']['selection_metric']} per grid "
+              "point | chosen |",
               "|---|---|---|---|"]
     for name, arm in summary["arms"].items():
         means = ", ".join(_num(m) for m in arm["validation_means"])

@@ -2,9 +2,26 @@
 
 Every run trains with ``holonomic.Langevin`` under the same budget (epochs, batch size,
 step/friction/temperature, schedule), so every arm gets the same number of gradient
-evaluations: ``epochs * ceil(n_train / batch_size)``. The seed fixes the data split, the
-initial weights, the minibatch order and the integrator's noise, and the same seeds are
-used by every arm, so comparisons between arms are paired.
+evaluations: ``epochs * ceil(n_train / batch_size)`` per fold, times the number of folds
+with k-fold data (``grad_evals`` in the record is that total). The seed fixes the data
+split, the initial weights, the minibatch order and the integrator's noise, and the same
+seeds are used by every arm, so comparisons between arms are paired.
+
+The study's task (:class:`holonomic.study.tasks.Task`, carried by the data split) decides
+the output width (``task.n_outputs``), the loss (``task.loss``) and the metrics
+(``task.run_metrics``). Training steps run with the model in train mode; every evaluation
+(per-epoch history, final metrics, the ensemble phase's predictions) runs in eval mode under
+``torch.no_grad()`` (:func:`evaluation_mode`), so dropout is off and batch-norm layers use
+their running statistics.
+
+k-fold data (the data module's ``make_splits`` returns several folds): one model per fold,
+all from the same initial weights (the seed), with integrator noise seeded by seed and
+fold; the record's ``metrics`` are the means over folds, ``folds`` the per-fold metrics.
+
+Trained weights: with an output directory, each run's final weights (before an ensemble
+phase samples from them) are saved to ``runs/<key>.pt`` (``runs/<key>.fold<j>.pt`` per
+fold) before the run record is written; :mod:`holonomic.study.trained` rebuilds the model
+and predicts with it.
 
 Per-step hook point: :func:`default_step_hooks` returns the hooks called after every
 optimizer step with the model and the optimizer (see :class:`StepHook`); each hook's
@@ -18,10 +35,12 @@ import math
 import os
 import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
-from dataclasses import dataclass
+from contextlib import contextmanager
+from dataclasses import dataclass, field, replace
 from multiprocessing import get_context
 from pathlib import Path
-from typing import Any, Callable, Iterable, Protocol, Sequence
+from types import SimpleNamespace
+from typing import Any, Callable, Iterable, Iterator, Protocol, Sequence
 
 import numpy as np
 import torch
@@ -29,27 +48,39 @@ from torch import nn
 from torch.nn import functional as F
 
 import holonomic as hn
+from holonomic.study import data as data_module
 from holonomic.study import storage
 from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
-from holonomic.study.config import StudyConfig, StudyConfigError
-from holonomic.study.data import Split, load_dataset, make_split
+from holonomic.study.config import StudyConfig, StudyConfigError, selection_metric
+from holonomic.study.data import Split, load_dataset
 from holonomic.study.models import build_model
-from holonomic.study.stats import expected_calibration_error
+from holonomic.study.tasks import PARTS, Task
 
 __all__ = [
     "RunSpec",
     "StepHook",
+    "WEIGHT_METRICS",
+    "check_selection",
     "default_step_hooks",
     "epoch_order",
+    "evaluation_mode",
+    "load_folds",
     "make_optimizer",
     "minibatch_step",
     "plan_runs",
+    "record_metric_names",
     "run_all",
+    "study_task",
     "train_run",
 ]
 
 _DTYPES = {"float32": torch.float32, "float64": torch.float64}
-ECE_BINS = 15
+#: Weight metrics every run record holds besides the task's metrics (and
+#: ``constraint_residual``).
+WEIGHT_METRICS = ("weight_norm_hidden", "mean_row_norm_hidden", "weight_norm_output")
+#: Fold ``j`` of a seed draws its integrator noise from ``seed + j * _FOLD_SEED_OFFSET``
+#: (fold 0, and hold-out runs, from the seed itself).
+_FOLD_SEED_OFFSET = 100_003
 
 
 @dataclass(frozen=True)
@@ -96,17 +127,20 @@ class StepHook(Protocol):
 
 
 def default_step_hooks(config: StudyConfig, spec: RunSpec,
-                       out_dir: str | Path | None = None) -> list[StepHook]:
+                       out_dir: str | Path | None = None,
+                       fold: int | None = None) -> list[StepHook]:
     """Hooks attached to every run: an audit (:class:`~holonomic.study.audit_hook.RunAudit`)
     recording every ``config.audit_every`` steps and at the end, written to
-    ``out_dir/audits/<run key>.jsonl`` (in memory only when ``out_dir`` is None).
+    ``out_dir/audits/<run key>.jsonl`` (``<run key>.fold<j>.jsonl`` for fold ``j`` of
+    k-fold data; in memory only when ``out_dir`` is None).
 
     This is the extension point for per-run diagnostics: return objects with ``name``,
     ``on_step(model, optimizer, step)``, ``summary() -> dict`` and optionally ``finish``.
     """
     from holonomic.study.audit_hook import RunAudit
 
-    path = None if out_dir is None else storage.audit_path(out_dir, spec.key)
+    name = spec.key if fold is None else f"{spec.key}.fold{fold}"
+    path = None if out_dir is None else storage.audit_path(out_dir, name)
     return [RunAudit(config.audit_every, path, relative_to=out_dir)]
 
 
@@ -128,36 +162,249 @@ def epoch_order(n: int, seed: int, epoch: int) -> torch.Tensor:
     return torch.randperm(n, generator=generator)
 
 
+@contextmanager
+def evaluation_mode(model: nn.Module) -> Iterator[nn.Module]:
+    """Evaluate ``model``: eval mode (dropout off, batch-norm running statistics) under
+    ``torch.no_grad()``; every submodule's previous training flag is restored afterwards."""
+    modes = [(module, module.training) for module in model.modules()]
+    model.eval()
+    try:
+        with torch.no_grad():
+            yield model
+    finally:
+        for module, mode in modes:
+            module.training = mode
+
+
 def minibatch_step(model: nn.Module, optimizer: torch.optim.Optimizer, setup: ArmSetup,
-                   x: torch.Tensor, y: torch.Tensor, idx: torch.Tensor, where: str) -> None:
-    """One step on the mini-batch ``idx``: ``zero_grad; mean cross-entropy; backward;
-    optimizer.step(); arm after-step``. Raises ``FloatingPointError`` naming ``where`` on a
+                   x: torch.Tensor, y: torch.Tensor, idx: torch.Tensor, where: str,
+                   loss: Callable[[torch.Tensor, torch.Tensor], torch.Tensor] | None = None,
+                   ) -> None:
+    """One step on the mini-batch ``idx``: ``zero_grad; mean loss; backward;
+    optimizer.step(); arm after-step``. ``loss(outputs, targets)`` is the task's loss
+    (``Task.loss``; cross-entropy when None). The model's mode is the caller's (train mode
+    in training and sampling). Raises ``FloatingPointError`` naming ``where`` on a
     non-finite loss (``holonomic.IntegrationError`` passes through)."""
+    loss_fn = F.cross_entropy if loss is None else loss
     optimizer.zero_grad(set_to_none=True)
-    loss = F.cross_entropy(model(x[idx]), y[idx])
-    if not torch.isfinite(loss):
+    value = loss_fn(model(x[idx]), y[idx])
+    if not torch.isfinite(value):
         raise FloatingPointError(f"non-finite loss at {where}")
-    loss.backward()
+    value.backward()
     optimizer.step()
     if setup.after_step is not None:
         setup.after_step()
 
 
-def _evaluate(model: nn.Module, x: torch.Tensor, y: torch.Tensor) -> dict[str, Any]:
-    with torch.no_grad():
-        logits = model(x)
-        loss = float(F.cross_entropy(logits, y))
-        accuracy = float((logits.argmax(dim=1) == y).double().mean())
-        probabilities = torch.softmax(logits.double(), dim=1).numpy()
-    return {"loss": loss, "accuracy": accuracy, "probabilities": probabilities}
+def outputs_of(model: nn.Module, x: torch.Tensor) -> np.ndarray:
+    """The model's raw outputs on ``x`` in eval mode (float64 numpy; logits, or
+    standardised predictions for regression)."""
+    with evaluation_mode(model):
+        return model(x).detach().to(torch.float64).numpy()
 
 
-def _tensors(split: Split, dtype: torch.dtype) -> dict[str, tuple[torch.Tensor, torch.Tensor]]:
+def _evaluate(model: nn.Module, x: torch.Tensor, y: np.ndarray, task: Task) -> dict[str, float]:
+    """Every metric of ``task.metrics`` on one split, in eval mode (``y``: labels or targets
+    in original units)."""
+    return task.scores(outputs_of(model, x), y)
+
+
+# ---------------------------------------------------------------------------------------
+# Data: one or several folds of a seed
+
+
+def _task_of(split: Any) -> Task:
+    """The split's task (a data module without tasks: classification)."""
+    return getattr(split, "task", None) or Task("classification", split.n_classes)
+
+
+def _standardised_split(dataset: Any, data_config: Any, seed: int) -> Any:
+    """A split with its standardisation statistics, for a data module whose ``Split`` does
+    not carry them: the unstandardised split of ``make_split``, standardised here with the
+    training part's mean and standard deviation exactly as ``make_split`` does."""
+    raw = data_module.make_split(dataset, replace(data_config, standardize=False), seed)
+    mean = raw.x_train.mean(axis=0)
+    std = raw.x_train.std(axis=0)
+    std = np.where(std > 1e-8, std, 1.0)
+    if not data_config.standardize:
+        mean, std = np.zeros_like(mean), np.ones_like(std)
+    return SimpleNamespace(
+        x_train=(raw.x_train - mean) / std, y_train=raw.y_train,
+        x_val=(raw.x_val - mean) / std, y_val=raw.y_val,
+        x_test=(raw.x_test - mean) / std, y_test=raw.y_test,
+        n_classes=raw.n_classes, task=Task("classification", raw.n_classes),
+        feature_mean=mean, feature_std=std, fold=0)
+
+
+def load_folds(config: StudyConfig, seed: int) -> tuple[Any, list[Any]]:
+    """The data set and the splits of ``seed``: several for k-fold data, one otherwise.
+
+    Each split carries ``task``, ``feature_mean``, ``feature_std`` and ``fold`` (see
+    :class:`holonomic.study.data.Split`).
+    """
+    dataset = load_dataset(config)
+    make_splits = getattr(data_module, "make_splits", None)
+    if make_splits is not None:
+        splits = list(make_splits(dataset, config.data, seed))
+    else:
+        splits = [_standardised_split(dataset, config.data, seed)]
+    return dataset, splits
+
+
+def study_task(config: StudyConfig) -> Task:
+    """The study's task as far as its data say before any split (no target statistics):
+    for checking ``study.selection`` at the start of a study."""
+    dataset = load_dataset(config)
+    name = getattr(dataset, "task", "classification")
+    return Task(name, dataset.n_classes if name == "classification" else 0)
+
+
+def check_selection(config: StudyConfig) -> str:
+    """The study's selection metric (:func:`holonomic.study.config.selection_metric`);
+    raises ``StudyConfigError`` before anything is trained or written if the task has no
+    such metric."""
+    return selection_metric(config, study_task(config))
+
+
+def _tensors(split: Split, dtype: torch.dtype, task: Task | None = None,
+             ) -> dict[str, tuple[torch.Tensor, torch.Tensor]]:
+    """Inputs and training targets per part: features in ``dtype``; labels (long) or
+    standardised regression targets in ``dtype`` (``Task.target_tensor``)."""
+    task = _task_of(split) if task is None else task
+
     def pair(x: np.ndarray, y: np.ndarray) -> tuple[torch.Tensor, torch.Tensor]:
-        return torch.as_tensor(x, dtype=dtype), torch.as_tensor(y, dtype=torch.long)
+        target = task.target_tensor(y)
+        if task.is_regression:
+            target = target.to(dtype)
+        return torch.as_tensor(x, dtype=dtype), target
 
     return {"train": pair(split.x_train, split.y_train), "val": pair(split.x_val, split.y_val),
             "test": pair(split.x_test, split.y_test)}
+
+
+def _targets(split: Split) -> dict[str, np.ndarray]:
+    """Labels or targets in original units per part (what the metrics compare with)."""
+    return {"train": np.asarray(split.y_train), "val": np.asarray(split.y_val),
+            "test": np.asarray(split.y_test)}
+
+
+def record_metric_names(task: Task) -> tuple[str, ...]:
+    """Every name in a run record's ``metrics`` for ``task``: the task's metrics
+    (``Task.record_metrics``), the weight norms and ``constraint_residual``."""
+    return task.record_metrics() + WEIGHT_METRICS + ("constraint_residual",)
+
+
+def _nan_metrics(task: Task) -> dict[str, float]:
+    return {name: math.nan for name in record_metric_names(task)}
+
+
+def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str, task: Task,
+                   targets: dict[str, np.ndarray]) -> dict[str, float]:
+    """The record's ``metrics``: ``task.run_metrics`` of eval-mode outputs on every part
+    (``targets``: labels or targets in original units), weight norms and the constraint
+    residual (NaN everywhere unless ``status`` is ok)."""
+    if status != "ok":
+        return _nan_metrics(task)
+    outputs = {part: outputs_of(model, data[part][0]) for part in PARTS}
+    out = task.run_metrics(outputs, targets)
+    out.update(weight_norms(model))
+    out["constraint_residual"] = constraint_residual(model, setup)
+    return {name: float(out[name]) for name in record_metric_names(task)}
+
+
+# ---------------------------------------------------------------------------------------
+# Training
+
+
+@dataclass
+class _FoldRun:
+    """What training one fold produced."""
+
+    fold: int
+    task: Task
+    split: Any
+    model: nn.Module
+    setup: ArmSetup
+    data: dict
+    status: str
+    message: str
+    steps_done: int
+    n_train: int
+    history: dict[str, list]
+    metrics: dict[str, float]
+    hooks: dict[str, Any] = field(default_factory=dict)
+
+
+def _planned_steps(config: StudyConfig, n_train: int) -> int:
+    return config.budget.epochs * math.ceil(n_train / config.budget.batch_size)
+
+
+def _train_fold(config: StudyConfig, spec: RunSpec, split: Any, fold: int,
+                hooks: list[StepHook], where: str = "") -> _FoldRun:
+    """Train one model on one split (the whole run for hold-out data); ``where`` prefixes
+    failure messages (``"fold j "`` for k-fold data)."""
+    dtype = _DTYPES[config.budget.dtype]
+    task = _task_of(split)
+    data = _tensors(split, dtype, task)
+    targets = _targets(split)
+    x_train, y_train = data["train"]
+    n_train = len(y_train)
+    model = build_model(config.model, x_train.shape[1], task.n_outputs, spec.seed, dtype)
+    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model)
+    optimizer = make_optimizer(model.parameters(), config, setup.weight_decay,
+                               spec.seed + _FOLD_SEED_OFFSET * fold)
+    batch = config.budget.batch_size
+    total_steps = _planned_steps(config, n_train)
+    scheduler = None
+    if config.budget.schedule == "cosine":
+        scheduler = torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total_steps)
+
+    headline = task.headline
+    history: dict[str, list] = {k: [] for k in (
+        ["epoch"] + [f"{part}_{headline}" for part in PARTS]
+        + [f"{part}_loss" for part in PARTS] + ["mean_row_norm_hidden", "constraint_residual"])}
+    status, message, step = "ok", "", 0
+    model.train()
+    for epoch in range(config.budget.epochs):
+        order = epoch_order(n_train, spec.seed, epoch)
+        try:
+            for start in range(0, n_train, batch):
+                minibatch_step(model, optimizer, setup, x_train, y_train,
+                               order[start:start + batch], f"{where}step {step}", task.loss)
+                step += 1
+                for hook in hooks:
+                    hook.on_step(model, optimizer, step)
+                if scheduler is not None:
+                    scheduler.step()
+        except hn.IntegrationError as exc:
+            status, message = "failed", f"{where}IntegrationError at step {step}: {exc}"
+        except FloatingPointError as exc:
+            status, message = "diverged", f"{where}{exc}"
+        if status != "ok":
+            break
+        scores = {part: _evaluate(model, data[part][0], targets[part], task) for part in PARTS}
+        history["epoch"].append(epoch + 1)
+        for part in PARTS:
+            history[f"{part}_{headline}"].append(scores[part][headline])
+            history[f"{part}_loss"].append(scores[part]["loss"])
+        history["mean_row_norm_hidden"].append(weight_norms(model)["mean_row_norm_hidden"])
+        history["constraint_residual"].append(constraint_residual(model, setup))
+
+    for hook in hooks:
+        if hasattr(hook, "finish"):
+            hook.finish(model, optimizer, step)
+    metrics = _final_metrics(model, data, setup, status, task, targets)
+    return _FoldRun(fold, task, split, model, setup, data, status, message, step, n_train,
+                    history, metrics, {hook.name: hook.summary() for hook in hooks})
+
+
+def _mean_history(histories: list[dict[str, list]]) -> dict[str, list]:
+    """Per-epoch means over folds (over the epochs every fold reached)."""
+    n = min(len(h["epoch"]) for h in histories)
+    out = {k: [float(np.mean([h[k][i] for h in histories])) for i in range(n)]
+           for k in histories[0]}
+    out["epoch"] = [int(e) for e in histories[0]["epoch"][:n]]
+    return out
 
 
 def train_run(config: StudyConfig, spec: RunSpec,
@@ -166,19 +413,28 @@ def train_run(config: StudyConfig, spec: RunSpec,
               ) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
     """Train one run and return its record (metrics, per-epoch history, settings).
 
-    Loop: for each epoch, for each minibatch of :func:`epoch_order`:
-    ``zero_grad; loss = mean cross-entropy; backward; optimizer.step(); arm after-step;
-    hooks``; after each epoch, accuracy / loss on train, validation and test, hidden weight
-    norms and the constraint residual are logged. Test metrics are computed for every run
-    but the study never uses them to choose settings.
+    Loop: for each epoch, for each minibatch of :func:`epoch_order` (model in train mode):
+    ``zero_grad; loss = task.loss (mean cross-entropy, or half the mean squared error of
+    standardised targets); backward; optimizer.step(); arm after-step; hooks``; after each
+    epoch, the task's headline metric and loss on train, validation and test, the mean
+    hidden row norm and the constraint residual are logged (eval mode). Test metrics are
+    computed for every run but the study never uses them to choose settings.
 
-    ``hooks`` default to :func:`default_step_hooks` (``out_dir`` places their files).
+    ``hooks`` default to :func:`default_step_hooks` (``out_dir`` places their files); with
+    k-fold data every fold gets its own default hooks, so ``hooks`` must be None.
+
+    With ``out_dir``, the final weights are saved to ``out_dir/runs/<key>.pt`` (k-fold:
+    ``<key>.fold<j>.pt`` per fold) before the record is returned (the caller then writes
+    the record, which commits the run); see :mod:`holonomic.study.trained`. Failed or
+    diverged runs save none (``weights_file`` None).
 
     If the arm has an ensemble phase (``[arms.NAME.ensemble]``), the trained network then
     continues as a sampler (:func:`holonomic.study.ensemble.run_ensemble_phase`); its
     results are under ``"ensemble"`` (None for arms without one) and the metrics under
-    ``"metrics"`` stay those of the trained network. With ``return_model`` the model is
-    returned as it is at the end (after sampling, when there is an ensemble phase).
+    ``"metrics"`` stay those of the trained network (whose weights are the ones saved).
+    Ensembles are not combined with k-fold data (refused when the config is read). With
+    ``return_model`` the model is returned as it is at the end (after sampling, when there
+    is an ensemble phase; fold 0's model for k-fold data).
 
     Torch runs single-threaded inside (restored afterwards): the models are small, so
     threads only add overhead, and results do not depend on the thread count.
@@ -197,66 +453,57 @@ def train_run(config: StudyConfig, spec: RunSpec,
 def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | None,
                return_model: bool, out_dir: str | Path | None,
                ) -> dict[str, Any] | tuple[dict[str, Any], nn.Module]:
-    dtype = _DTYPES[config.budget.dtype]
-    split = make_split(load_dataset(config), config.data, spec.seed)
-    data = _tensors(split, dtype)
-    x_train, y_train = data["train"]
-    n_train = len(y_train)
-    model = build_model(config.model, x_train.shape[1], split.n_classes, spec.seed, dtype)
-    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model)
-    optimizer = make_optimizer(model.parameters(), config, setup.weight_decay, spec.seed)
-    batch = config.budget.batch_size
-    steps_per_epoch = math.ceil(n_train / batch)
-    total_steps = config.budget.epochs * steps_per_epoch
-    scheduler = None
-    if config.budget.schedule == "cosine":
-        scheduler = torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total_steps)
-    hooks = list(default_step_hooks(config, spec, out_dir) if hooks is None else hooks)
+    from holonomic.study import trained
 
-    history: dict[str, list[float]] = {k: [] for k in (
-        "epoch", "train_accuracy", "val_accuracy", "test_accuracy", "train_loss", "val_loss",
-        "test_loss", "mean_row_norm_hidden", "constraint_residual")}
-    status, message, step = "ok", "", 0
-    started = time.perf_counter()
-    for epoch in range(config.budget.epochs):
-        order = epoch_order(n_train, spec.seed, epoch)
-        try:
-            for start in range(0, n_train, batch):
-                minibatch_step(model, optimizer, setup, x_train, y_train,
-                               order[start:start + batch], f"step {step}")
-                step += 1
-                for hook in hooks:
-                    hook.on_step(model, optimizer, step)
-                if scheduler is not None:
-                    scheduler.step()
-        except hn.IntegrationError as exc:
-            status, message = "failed", f"IntegrationError at step {step}: {exc}"
-        except FloatingPointError as exc:
-            status, message = "diverged", str(exc)
-        if status != "ok":
-            break
-        evaluations = {part: _evaluate(model, *data[part]) for part in data}
-        history["epoch"].append(epoch + 1)
-        for part, ev in evaluations.items():
-            history[f"{part}_accuracy"].append(ev["accuracy"])
-            history[f"{part}_loss"].append(ev["loss"])
-        history["mean_row_norm_hidden"].append(weight_norms(model)["mean_row_norm_hidden"])
-        history["constraint_residual"].append(constraint_residual(model, setup))
-
-    for hook in hooks:
-        if hasattr(hook, "finish"):
-            hook.finish(model, optimizer, step)
-    metrics = _final_metrics(model, data, setup, status)
-    training_wall_s = time.perf_counter() - started
+    dataset, splits = load_folds(config, spec.seed)
+    task = _task_of(splits[0])
+    selection_metric(config, task)  # an impossible selection fails before any training
+    k = len(splits)
     ensemble_config = config.arm(spec.arm).ensemble
+    if k > 1 and hooks is not None:
+        raise ValueError(f"train_run: the data have {k} folds and every fold gets its own "
+                         "default hooks; pass hooks=None")
+    if k > 1 and ensemble_config is not None:
+        raise StudyConfigError(f"study config: 'arms.{spec.arm}.ensemble' cannot be combined "
+                               f"with k-fold data ({k} folds); use a hold-out split")
+    started = time.perf_counter()
+    runs: list[_FoldRun] = []
+    for j, split in enumerate(splits):
+        fold_hooks = list(default_step_hooks(config, spec, out_dir, None if k == 1 else j)
+                          if hooks is None else hooks)
+        runs.append(_train_fold(config, spec, split, j, fold_hooks,
+                                "" if k == 1 else f"fold {j} "))
+        if runs[-1].status != "ok":
+            break
+    training_wall_s = time.perf_counter() - started
+    bad = next((r for r in runs if r.status != "ok"), None)
+    status, message = ("ok", "") if bad is None else (bad.status, bad.message)
+    first = runs[0]
+
+    weights_files: list[str] = []
+    if out_dir is not None and status == "ok":
+        for r in runs:  # saved before sampling: the trained weights
+            weights_files.append(trained.save_run_weights(
+                out_dir, spec, r.model, dataset, r.split, r.task, config,
+                r.setup.layers, None if k == 1 else r.fold, k))
+
     ensemble = None
     if ensemble_config is not None:
         from holonomic.study.ensemble import run_ensemble_phase, skipped_phase
 
-        ensemble = (run_ensemble_phase(config, ensemble_config, model, setup, data, spec.seed,
-                                       first_epoch=config.budget.epochs)
-                    if status == "ok" else skipped_phase(config, ensemble_config, n_train,
-                                                         f"training {status}"))
+        ensemble = (run_ensemble_phase(config, ensemble_config, first.model, first.setup,
+                                       first.data, spec.seed, first_epoch=config.budget.epochs,
+                                       task=task, targets=_targets(first.split))
+                    if status == "ok" else skipped_phase(config, ensemble_config,
+                                                         first.n_train, f"training {status}",
+                                                         task=task))
+    if k == 1:
+        metrics, history = first.metrics, first.history
+    else:
+        metrics = (_nan_metrics(task) if status != "ok" else
+                   {name: float(np.mean([r.metrics[name] for r in runs]))
+                    for name in record_metric_names(task)})
+        history = _mean_history([r.history for r in runs])
     record = {
         "key": spec.key,
         "arm": spec.arm,
@@ -266,43 +513,45 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         "status": status,
         "message": message,
         "fingerprint": config.training_fingerprint(),
-        "n_train": n_train,
-        "grad_evals": total_steps,
-        "steps_done": step,
-        "layers": setup.layers,
+        "task": task.name,
+        "n_classes": task.n_classes,
+        "classes": [str(c) for c in dataset.classes],
+        "target_mean": float(task.target_mean),
+        "target_std": float(task.target_std),
+        "data_fingerprint": str(getattr(dataset, "fingerprint", "")),
+        "feature_names": [str(n) for n in getattr(dataset, "feature_names", ())],
+        "n_train": first.n_train,
+        "grad_evals": sum(_planned_steps(config, len(s.y_train)) for s in splits),
+        "steps_done": sum(r.steps_done for r in runs),
+        "layers": first.setup.layers,
         "metrics": metrics,
         "history": history,
-        "hooks": {hook.name: hook.summary() for hook in hooks},
+        "hooks": first.hooks,
+        "weights_file": weights_files[0] if weights_files else None,
+        "weights_files": weights_files,
         "ensemble_settings": config.ensemble_settings(spec.arm),
         "ensemble": ensemble,
         "training_wall_s": training_wall_s,
         "wall_s": time.perf_counter() - started,
     }
-    return (record, model) if return_model else record
+    if k > 1:
+        record["folds"] = [r.metrics for r in runs]
+        record["fold_details"] = [
+            {"fold": r.fold, "status": r.status, "message": r.message, "n_train": r.n_train,
+             "steps_done": r.steps_done, "target_mean": float(r.task.target_mean),
+             "target_std": float(r.task.target_std), "hooks": r.hooks,
+             "weights_file": weights_files[i] if i < len(weights_files) else None}
+            for i, r in enumerate(runs)]
+    return (record, first.model) if return_model else record
 
 
+#: The classification record's metric names before tasks existed (a subset of
+#: ``record_metric_names(Task("classification", k))``); kept for readers of old records.
 _METRIC_NAMES = (
     "train_accuracy", "val_accuracy", "test_accuracy", "train_loss", "val_loss", "test_loss",
     "gap_accuracy", "gap_loss", "val_gap_accuracy", "val_gap_loss", "ece_val", "ece_test",
     "weight_norm_hidden", "mean_row_norm_hidden", "weight_norm_output", "constraint_residual",
 )
-
-
-def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str) -> dict:
-    if status != "ok":
-        return {name: math.nan for name in _METRIC_NAMES}
-    ev = {part: _evaluate(model, *data[part]) for part in data}
-    out = {f"{part}_{k}": ev[part][k] for part in ev for k in ("accuracy", "loss")}
-    out["gap_accuracy"] = out["train_accuracy"] - out["test_accuracy"]
-    out["gap_loss"] = out["test_loss"] - out["train_loss"]
-    out["val_gap_accuracy"] = out["train_accuracy"] - out["val_accuracy"]
-    out["val_gap_loss"] = out["val_loss"] - out["train_loss"]
-    for part in ("val", "test"):
-        out[f"ece_{part}"] = expected_calibration_error(
-            ev[part]["probabilities"], data[part][1].numpy(), ECE_BINS)
-    out.update(weight_norms(model))
-    out["constraint_residual"] = constraint_residual(model, setup)
-    return {name: out[name] for name in _METRIC_NAMES}
 
 
 # ---------------------------------------------------------------------------------------

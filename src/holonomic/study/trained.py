@@ -1,0 +1,229 @@
+"""What a study trained: the saved weights of every run, and predicting with them.
+
+Every finished run of a study saves its trained network next to its record::
+
+    DIR/runs/<key>.pt              hold-out data (key: <arm>-<strength>-s<seed>)
+    DIR/runs/<key>.fold<j>.pt      k-fold data, one file per fold j = 0 .. k-1
+
+The file is written (temporary file, fsync, rename) before the run's record
+``DIR/runs/<key>.json``, whose ``"weights_file"`` (``"weights_files"`` for every fold) names
+it relative to ``DIR``; a run that failed or diverged saves none (``weights_file`` null).
+For an arm with an ensemble phase these are the trained weights, before sampling.
+
+The file holds only tensors and plain values, so it loads with
+``torch.load(path, weights_only=True)``:
+
+==================  ============================================================================
+key                 value
+==================  ============================================================================
+``state_dict``      ``model.state_dict()`` (constrained weights are plain tensors: nothing
+                    needs ``holonomic.constrain`` again to predict)
+``task``            ``"classification"`` or ``"regression"``
+``classes``         class names, in the order of the network's outputs (``[]`` for regression)
+``n_classes``       number of classes (0 for regression); ``n_outputs`` the output width
+``feature_names``   the feature columns, in input order (``[]`` if the source has no names)
+``feature_mean``,   float64 tensors (d,): inputs were standardised as ``(x - mean) / std``
+``feature_std``     with the training part's statistics (zeros and ones when
+                    ``data.standardize = false``)
+``target_mean``,    the training part's target mean and standard deviation: a regression
+``target_std``      network predicts ``(y - target_mean) / target_std`` (0 and 1 otherwise)
+``model``           ``{"widths", "activation", "factory"}`` (the study's ``[model]``),
+                    ``in_features``, ``dtype`` (``"float32"``/``"float64"``)
+``arm``,            the run: arm, strength, seed, ``fold`` (None for hold-out), ``folds``,
+``strength``, ...   ``key``, ``layers`` (parameters the arm acted on), ``data_fingerprint``
+==================  ============================================================================
+
+Rebuild and predict::
+
+    from holonomic.study import load_trained, predict, class_probabilities
+
+    model, info = load_trained("DIR", "fixed_norm", strength=0.5, seed=3)   # or a run key,
+    labels = predict(model, info, x)          # class names, or targets in their own units
+    probs = class_probabilities(model, info, x)   # classification: (n, k), float64
+
+``x`` is a 2-D array of raw feature values (columns in the order of
+``info["feature_names"]``, as in the data file, without the target column);
+:func:`predict` standardises it with the saved statistics, runs the network in eval mode and
+maps regression outputs back with ``target_mean + target_std * output``. A model factory
+(``model.factory``) must be importable (its folder on ``sys.path``) to rebuild the network.
+By hand: ``build_model(ModelConfig(**info["model"]), info["in_features"],
+info["n_outputs"], seed, dtype)`` from :mod:`holonomic.study.models`, then
+``model.load_state_dict(info["state_dict"])`` and ``model.eval()``.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from torch import nn
+
+from holonomic.study import storage
+
+__all__ = ["class_probabilities", "load_trained", "load_weights", "predict", "rebuild_model",
+           "save_run_weights", "weights_path"]
+
+_DTYPES = {"float32": torch.float32, "float64": torch.float64}
+
+
+def weights_path(out_dir: str | Path, key: str, fold: int | None = None) -> Path:
+    """``DIR/runs/<key>.pt``, or ``DIR/runs/<key>.fold<j>.pt`` for fold ``j``."""
+    name = f"{key}.pt" if fold is None else f"{key}.fold{fold}.pt"
+    return storage.runs_dir(out_dir) / name
+
+
+def _write_atomic(path: Path, payload: dict[str, Any]) -> None:
+    """``torch.save`` to a temporary file in the same folder, fsync, rename onto ``path``."""
+    tmp = storage.temporary_path(path, keep_suffix=True)
+    try:
+        with open(tmp, "wb") as handle:
+            torch.save(payload, handle)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def save_run_weights(out_dir: str | Path, spec: Any, model: nn.Module, dataset: Any,
+                     split: Any, task: Any, config: Any, layers: list[str],
+                     fold: int | None = None, folds: int = 1) -> str:
+    """Save one trained network (see the module docstring) and return its path relative
+    to ``out_dir`` (forward slashes), for the run record's ``weights_file``."""
+    path = weights_path(out_dir, spec.key, fold)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    state = {name: value.detach().cpu().clone() for name, value in model.state_dict().items()}
+    payload = {
+        "state_dict": state,
+        "task": task.name,
+        "n_classes": int(task.n_classes),
+        "n_outputs": int(task.n_outputs),
+        "classes": [str(c) for c in dataset.classes],
+        "feature_names": [str(n) for n in getattr(dataset, "feature_names", ())],
+        "feature_mean": torch.as_tensor(np.asarray(split.feature_mean, dtype=np.float64)),
+        "feature_std": torch.as_tensor(np.asarray(split.feature_std, dtype=np.float64)),
+        "target_mean": float(task.target_mean),
+        "target_std": float(task.target_std),
+        "model": {"widths": [int(w) for w in config.model.widths],
+                  "activation": str(config.model.activation),
+                  "factory": config.model.factory},
+        "in_features": int(np.asarray(split.x_train).shape[1]),
+        "dtype": str(config.budget.dtype),
+        "key": spec.key,
+        "arm": spec.arm,
+        "strength": float(spec.strength),
+        "seed": int(spec.seed),
+        "fold": fold,
+        "folds": int(folds),
+        "layers": [str(name) for name in layers],
+        "data_fingerprint": str(getattr(dataset, "fingerprint", "")),
+    }
+    _write_atomic(path, payload)
+    return os.path.relpath(path, out_dir).replace(os.sep, "/")
+
+
+def load_weights(path: str | Path) -> dict[str, Any]:
+    """A saved weights file (``torch.load(path, weights_only=True)``, on the CPU)."""
+    return torch.load(Path(path), map_location="cpu", weights_only=True)
+
+
+def rebuild_model(info: dict[str, Any]) -> nn.Module:
+    """The network of a weights file with its weights loaded, in eval mode."""
+    from holonomic.study.config import ModelConfig
+    from holonomic.study.models import build_model
+
+    spec = info["model"]
+    model_config = ModelConfig(widths=tuple(spec["widths"]), activation=spec["activation"],
+                               factory=spec["factory"])
+    model = build_model(model_config, int(info["in_features"]), int(info["n_outputs"]),
+                        int(info["seed"]), _DTYPES[info["dtype"]])
+    model.load_state_dict(info["state_dict"])
+    return model.eval()
+
+
+def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
+                 seed: int | None = None, fold: int | None = None,
+                 ) -> tuple[nn.Module, dict[str, Any]]:
+    """Rebuild a trained network of a study and load its weights (eval mode).
+
+    Args:
+        study_dir: the study's ``--out`` directory.
+        run: a run key (``"fixed_norm-0.5-s3"``), or an arm name with ``strength`` and
+            ``seed``.
+        fold: for k-fold data, which fold's network (required then).
+
+    Returns:
+        ``(model, info)``: ``info`` is the weights file's contents (see the module
+        docstring) plus ``"path"``; pass both to :func:`predict`.
+
+    Raises:
+        FileNotFoundError: no weights for that run (not finished, failed, or trained
+            before weights were saved), naming the file looked for.
+        ValueError: k-fold weights and no ``fold``, or ``strength`` without ``seed``.
+    """
+    if (strength is None) != (seed is None):
+        raise ValueError("load_trained: give both strength and seed with an arm name, or a "
+                         "run key alone")
+    if strength is None:
+        key = run
+    else:
+        from holonomic.study.runner import RunSpec
+
+        key = RunSpec(run, 0, float(strength), int(seed)).key
+    path = weights_path(study_dir, key, fold)
+    if not path.is_file():
+        folds = sorted(storage.runs_dir(study_dir).glob(f"{key}.fold*.pt"))
+        if fold is None and folds:
+            raise ValueError(f"load_trained: run {key!r} was trained on {len(folds)} folds; "
+                             f"pass fold=0..{len(folds) - 1}")
+        raise FileNotFoundError(f"load_trained: no saved weights for run {key!r} at "
+                                f"{str(path)!r} (the run is not finished, failed, or was "
+                                "trained before weights were saved)")
+    info = load_weights(path)
+    info["path"] = str(path)
+    return rebuild_model(info), info
+
+
+def raw_outputs(model: nn.Module, info: dict[str, Any], x: Any) -> np.ndarray:
+    """The network's outputs (float64) for raw features ``x`` (n, d): standardised with the
+    saved statistics, eval mode, no gradients."""
+    x = np.asarray(x, dtype=np.float64)
+    mean = info["feature_mean"].numpy()
+    std = info["feature_std"].numpy()
+    if x.ndim != 2 or x.shape[1] != mean.shape[0]:
+        names = info.get("feature_names") or []
+        listed = f" ({', '.join(names)})" if names else ""
+        raise ValueError(f"x must have shape (n, {mean.shape[0]}): the {mean.shape[0]} "
+                         f"feature columns{listed}; got shape {x.shape}")
+    if not np.isfinite(x).all():
+        row, column = np.argwhere(~np.isfinite(x))[0]
+        raise ValueError(f"x holds a non-finite value at row {row}, column {column}; the "
+                         "network needs complete rows")
+    dtype = _DTYPES[info["dtype"]]
+    inputs = torch.as_tensor((x - mean) / std, dtype=dtype)
+    from holonomic.study.runner import outputs_of
+
+    return outputs_of(model, inputs)
+
+
+def predict(model: nn.Module, info: dict[str, Any], x: Any) -> np.ndarray:
+    """Predictions for raw features ``x`` (n, d): class names (the largest output), or
+    regression targets in their original units (``target_mean + target_std * output``)."""
+    outputs = raw_outputs(model, info, x)
+    if info["task"] == "regression":
+        return info["target_mean"] + info["target_std"] * outputs.reshape(-1)
+    return np.asarray(info["classes"])[outputs.argmax(axis=1)]
+
+
+def class_probabilities(model: nn.Module, info: dict[str, Any], x: Any) -> np.ndarray:
+    """Classification: softmax probabilities (n, k), float64, columns in the order of
+    ``info["classes"]``."""
+    if info["task"] != "classification":
+        raise ValueError(f"class_probabilities needs a classification network; this one is "
+                         f"{info['task']}")
+    outputs = torch.as_tensor(raw_outputs(model, info, x))
+    return torch.softmax(outputs, dim=1).numpy()
