@@ -10,6 +10,7 @@ import torch
 from torch import nn
 
 from holonomic.study import class_probabilities, load_trained, parse_config, predict
+from holonomic.study import storage
 from holonomic.study.models import build_model
 from holonomic.study.runner import (
     RunSpec,
@@ -24,6 +25,14 @@ from holonomic.study.trained import load_weights
 from tests.study import factories
 
 DROPOUT_BN = "tests.study.factories:dropout_batchnorm"
+
+
+def _stored_run(config, spec, out) -> dict:
+    """Train a run and store its record, as a study does (the record commits the run)."""
+    storage.runs_dir(out).mkdir(parents=True, exist_ok=True)
+    record = train_run(config, spec, out_dir=out)
+    storage.write_record(out, record)
+    return record
 
 
 def _factory_config(doc: dict, factory: str, **budget):
@@ -48,7 +57,7 @@ def test_recorded_metrics_equal_a_fresh_eval_mode_evaluation_of_the_saved_weight
         tiny_doc, tmp_path):
     config = _factory_config(tiny_doc, DROPOUT_BN)
     spec = RunSpec("fixed_norm", 0, 0.5, seed=1)
-    record = train_run(config, spec, out_dir=tmp_path)
+    record = _stored_run(config, spec, tmp_path)
     assert record["status"] == "ok"
     assert record["weights_file"] == f"runs/{spec.key}.pt"
     assert record["weights_files"] == [record["weights_file"]]
@@ -107,7 +116,7 @@ def test_weights_file_layout_and_load_predict(tiny_doc, tmp_path):
     tiny_doc["budget"]["dtype"] = "float64"
     config = parse_config(tiny_doc)
     spec = RunSpec("orthonormal", 1, 0.5, seed=2)
-    record = train_run(config, spec, out_dir=tmp_path)
+    record = _stored_run(config, spec, tmp_path)
     info = load_weights(tmp_path / record["weights_file"])
     assert set(info) == {
         "state_dict", "task", "n_classes", "n_outputs", "classes", "feature_names",
@@ -145,8 +154,12 @@ def test_weights_file_layout_and_load_predict(tiny_doc, tmp_path):
     bad[2, 5] = np.nan
     with pytest.raises(ValueError, match="row 2, column 5"):
         predict(model, loaded, bad)
-    with pytest.raises(FileNotFoundError, match="no saved weights for run 'none-0.0-s2'"):
+    with pytest.raises(FileNotFoundError, match="no finished run 'none-0.0-s2'"):
         load_trained(tmp_path, "none", strength=0.0, seed=2)
+    # weights whose run has no record (killed before the record was written) are not used
+    (tmp_path / "runs" / f"{spec.key}.json").unlink()
+    with pytest.raises(FileNotFoundError, match=f"no finished run '{spec.key}'"):
+        load_trained(tmp_path, spec.key)
     with pytest.raises(ValueError, match="both strength and seed"):
         load_trained(tmp_path, "orthonormal", strength=0.5)
 
@@ -154,10 +167,12 @@ def test_weights_file_layout_and_load_predict(tiny_doc, tmp_path):
 def test_a_diverged_run_saves_no_weights(tiny_doc, tmp_path):
     tiny_doc["budget"].update(lr=1e4, momentum=0.0)
     config = parse_config(tiny_doc)
-    record = train_run(config, RunSpec("none", 0, 0.0, seed=0), out_dir=tmp_path)
+    record = _stored_run(config, RunSpec("none", 0, 0.0, seed=0), tmp_path)
     assert record["status"] in ("diverged", "failed")
     assert record["weights_file"] is None and record["weights_files"] == []
     assert not list((tmp_path / "runs").glob("*.pt"))
+    with pytest.raises(FileNotFoundError, match="no saved weights for run 'none-0.0-s0'"):
+        load_trained(tmp_path, "none-0.0-s0")
     assert set(record["metrics"]) == set(record_metric_names(
         load_folds(config, 0)[1][0].task))
     assert all(math.isnan(v) for v in record["metrics"].values())

@@ -70,7 +70,7 @@ from holonomic.study.config import EnsembleConfig, StudyConfig
 from holonomic.study.tasks import Task, regression_scores
 
 __all__ = ["ENSEMBLE_METRICS", "REGRESSION_ENSEMBLE_METRICS", "TRACED", "ensemble_metrics",
-           "run_ensemble_phase", "skipped_phase"]
+           "regression_predictive", "run_ensemble_phase", "skipped_phase"]
 
 #: Metrics of the single network and of the ensemble for classification
 #: (sampling.classification_metrics).
@@ -120,6 +120,17 @@ def _moments(outputs: torch.Tensor) -> torch.Tensor:
     collector into the first two moments over the samples."""
     f = outputs.reshape(-1, 1).to(torch.float64)
     return torch.cat([f, f * f], dim=1)
+
+
+def regression_predictive(moments: torch.Tensor, temperature: float,
+                          ) -> tuple[torch.Tensor, torch.Tensor]:
+    """Predictive mean and variance (standardised units) from the sample averages of the
+    prediction and its square (``moments``: (n, 2)): mean ``mu = E f``, variance
+    ``T + (E f^2 - mu^2)`` -- the likelihood's noise variance ``sigma^2 = T`` plus the
+    spread of the sampled networks' predictions (population variance over the samples)."""
+    mean = moments[:, 0]
+    spread = (moments[:, 1] - mean ** 2).clamp_min(0.0)
+    return mean, spread + temperature
 
 
 def _regression_metrics(mean: torch.Tensor, variance: torch.Tensor, y: Any,
@@ -215,8 +226,7 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
     if status == "ok":
         mean = collector.mean_probs()
         if regression:
-            spread = (mean[:, 1] - mean[:, 0] ** 2).clamp_min(0.0)
-            ensemble = scores(mean[:, 0], spread + temperature)
+            ensemble = scores(*regression_predictive(mean, temperature))
         else:
             ensemble = scores(mean, None)
     else:

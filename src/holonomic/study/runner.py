@@ -67,6 +67,7 @@ __all__ = [
     "load_folds",
     "make_optimizer",
     "minibatch_step",
+    "outputs_of",
     "plan_runs",
     "record_metric_names",
     "run_all",

@@ -174,15 +174,21 @@ def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
         from holonomic.study.runner import RunSpec
 
         key = RunSpec(run, 0, float(strength), int(seed)).key
+    record_path = storage.runs_dir(study_dir) / f"{key}.json"
+    if not record_path.is_file():  # the record commits a run: weights without one are not
+        raise FileNotFoundError(f"load_trained: no finished run {key!r} in "
+                                f"{str(study_dir)!r} (no {str(record_path)!r})")
+    record = storage.loads(record_path.read_text(encoding="utf-8"))
+    files = record.get("weights_files") or []
+    if fold is None and len(files) > 1:
+        raise ValueError(f"load_trained: run {key!r} was trained on {len(files)} folds; "
+                         f"pass fold=0..{len(files) - 1}")
     path = weights_path(study_dir, key, fold)
-    if not path.is_file():
-        folds = sorted(storage.runs_dir(study_dir).glob(f"{key}.fold*.pt"))
-        if fold is None and folds:
-            raise ValueError(f"load_trained: run {key!r} was trained on {len(folds)} folds; "
-                             f"pass fold=0..{len(folds) - 1}")
+    relative = os.path.relpath(path, study_dir).replace(os.sep, "/")
+    if relative not in files or not path.is_file():
         raise FileNotFoundError(f"load_trained: no saved weights for run {key!r} at "
-                                f"{str(path)!r} (the run is not finished, failed, or was "
-                                "trained before weights were saved)")
+                                f"{str(path)!r} (the run {record.get('status', '?')}; failed "
+                                "runs and runs trained before weights were saved have none)")
     info = load_weights(path)
     info["path"] = str(path)
     return rebuild_model(info), info
