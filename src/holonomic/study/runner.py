@@ -30,7 +30,8 @@ from torch.nn import functional as F
 
 import holonomic as hn
 from holonomic.study import storage
-from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
+from holonomic.study.arms import (ArmSetup, check_layer_selections, constraint_residual,
+                                  prepare_arm, weight_norms)
 from holonomic.study.config import StudyConfig, StudyConfigError
 from holonomic.study.data import Split, load_dataset, make_split
 from holonomic.study.models import build_model
@@ -203,7 +204,7 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
     x_train, y_train = data["train"]
     n_train = len(y_train)
     model = build_model(config.model, x_train.shape[1], split.n_classes, spec.seed, dtype)
-    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model)
+    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model, config)
     optimizer = make_optimizer(model.parameters(), config, setup.weight_decay, spec.seed)
     batch = config.budget.batch_size
     steps_per_epoch = math.ceil(n_train / batch)
@@ -240,7 +241,7 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         for part, ev in evaluations.items():
             history[f"{part}_accuracy"].append(ev["accuracy"])
             history[f"{part}_loss"].append(ev["loss"])
-        history["mean_row_norm_hidden"].append(weight_norms(model)["mean_row_norm_hidden"])
+        history["mean_row_norm_hidden"].append(weight_norms(model, setup)["mean_row_norm_hidden"])
         history["constraint_residual"].append(constraint_residual(model, setup))
 
     for hook in hooks:
@@ -300,7 +301,7 @@ def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str) -
     for part in ("val", "test"):
         out[f"ece_{part}"] = expected_calibration_error(
             ev[part]["probabilities"], data[part][1].numpy(), ECE_BINS)
-    out.update(weight_norms(model))
+    out.update(weight_norms(model, setup))
     out["constraint_residual"] = constraint_residual(model, setup)
     return {name: out[name] for name in _METRIC_NAMES}
 
@@ -374,7 +375,8 @@ def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     done = storage.read_records(out_dir, keys)
     check_compatible(config, done, out_dir)
     pending = [s for s in specs if s.key not in done]
-    load_dataset(config)  # fail early on data errors, in this process
+    dataset = load_dataset(config)  # fail early on data errors, in this process
+    check_layer_selections(config, dataset.x.shape[1], dataset.n_classes or 1)  # and layers
 
     from tqdm.auto import tqdm
 
