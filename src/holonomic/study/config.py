@@ -5,10 +5,11 @@ A study file has five tables and an optional sixth::
     [study]   name, seeds, selection (val_<metric> of the task; default val_accuracy for
               classification, val_rmse for regression: see selection_metric)
     [data]    source, target, train_size, val_fraction, test_fraction, standardize
-    [model]   widths, activation   (or factory = "package.module:function")
+    [model]   widths, activation   (or factory = "package.module:function"), constrain
     [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
               schedule, projection, dtype
-    [arms.NAME]  grid = [...]      NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
+    [arms.NAME]  grid = [...]      NAME in none, weight_decay, max_norm, fixed_norm, orthonormal;
+                 constrain         (optional, max_norm / fixed_norm / orthonormal only)
     [arms.NAME.ensemble]           (optional) temperature, samples, every, burn_in, sampler,
                                    step, friction: a sampling phase after training
     [audit]   every                (optional, default 50: steps between audit records)
@@ -67,15 +68,23 @@ DEFAULT_SELECTION = {"classification": "val_accuracy", "regression": "val_rmse"}
 DEFAULT_AUDIT_EVERY = 50
 BUILTIN_SOURCES = ("digits", "demo")
 SAMPLERS = ("adaptive", "langevin")
+#: Named layer selections of ``[model] constrain`` / ``[arms.NAME] constrain`` (besides a list
+#: of parameter-name patterns); see :class:`ModelConfig`.
+LAYER_SELECTIONS = ("hidden", "hidden+output")
+#: Arms whose weights a layer selection applies to (weight decay acts on every parameter).
+SELECTING_ARMS = ("max_norm", "fixed_norm", "orthonormal")
 #: Fewest samples of an ensemble phase: the mixing diagnostics need 4 draws per chain.
 MIN_ENSEMBLE_SAMPLES = 4
 
 _STRENGTH_MEANING = {
     "none": "no strength (one setting)",
     "weight_decay": "L2 coefficient lambda: force += lambda * w (all parameters)",
-    "max_norm": "ball radius c: each hidden unit's incoming weights clipped to |w| <= c",
-    "fixed_norm": "row radius r: each hidden unit's incoming weights held at |w| = r",
-    "orthonormal": "scale s: hidden weights held at W W^T = s^2 I (rows) or W^T W = s^2 I",
+    "max_norm": "ball radius c: each selected unit's incoming weights (a row; a conv output "
+                "channel's kernel) clipped to |w| <= c",
+    "fixed_norm": "row radius r: each selected unit's incoming weights (a row; a conv output "
+                  "channel's kernel) held at |w| = r",
+    "orthonormal": "scale s: selected weights (conv kernels as out x in*k matrices) held at "
+                   "W W^T = s^2 I (rows) or W^T W = s^2 I",
 }
 
 
@@ -97,15 +106,37 @@ class DataConfig:
 
 @dataclass(frozen=True)
 class ModelConfig:
-    """An MLP (``widths``, ``activation``) or a user factory ``"package.module:function"``.
+    """An MLP (``widths``, ``activation``) or a user factory ``"package.module:function"``,
+    and which weights the constraint and max-norm arms act on (``constrain``).
 
     A factory is called as ``factory(in_features, n_classes)`` and returns a
-    ``torch.nn.Module``; its ``nn.Linear`` layers except the last are the hidden layers.
+    ``torch.nn.Module``.
+
+    ``constrain`` (default ``"hidden"``) is the study's default for the arms ``max_norm``,
+    ``fixed_norm`` and ``orthonormal`` (each may override it with ``[arms.NAME] constrain``):
+
+    - ``"hidden"``: the weight of every ``nn.Linear`` and ``nn.Conv1d/2d/3d`` layer except
+      the output layer, which is the last ``Linear`` in module order (the last convolution
+      when the model has no ``Linear``). For an MLP: every ``Linear`` but the last.
+    - ``"hidden+output"``: those and the output layer's weight.
+    - a list of ``fnmatch``-style patterns (``*``, ``?``, ``[...]``; case-sensitive; ``*``
+      also matches dots) on qualified parameter names as ``model.named_parameters()`` gives
+      them, e.g. ``["features.*.weight", "fc1.weight"]``.
+
+    Only weights of >= 2 dimensions of ``Linear`` / ``Conv1d/2d/3d`` layers are eligible:
+    never a bias, never a BatchNorm / LayerNorm weight. A selection that matches nothing, or
+    a pattern that matches only ineligible parameters, is refused before the first run
+    (the check needs the model: :func:`holonomic.study.arms.prepare_arm`). Each output unit
+    is one vector: a row of a ``Linear`` weight, an output channel's kernel (flattened) of a
+    convolution. ``weight_decay`` ignores the selection and decays every parameter; the
+    weight-norm metrics of the ``none`` and ``weight_decay`` arms are measured on this
+    default selection.
     """
 
     widths: tuple[int, ...] = (64,)
     activation: str = "relu"
     factory: str | None = None
+    constrain: str | tuple[str, ...] = "hidden"
 
 
 @dataclass(frozen=True)
@@ -194,12 +225,24 @@ class EnsembleConfig:
 
 @dataclass(frozen=True)
 class ArmConfig:
-    """One arm: a regulariser and its grid of strengths (``(0.0,)`` for ``none``), and an
-    optional sampling phase after training (:class:`EnsembleConfig`)."""
+    """One arm: a regulariser and its grid of strengths (``(0.0,)`` for ``none``), an
+    optional sampling phase after training (:class:`EnsembleConfig`), and, for
+    ``max_norm``, ``fixed_norm`` and ``orthonormal`` only, ``constrain``: which weights the
+    arm acts on, with the values of ``[model] constrain`` (``"hidden"``, ``"hidden+output"``
+    or a list of parameter-name patterns; see :class:`ModelConfig`). ``None`` (the default,
+    key omitted) follows ``[model] constrain``."""
 
     name: str
     grid: tuple[float, ...]
     ensemble: EnsembleConfig | None = None
+    constrain: str | tuple[str, ...] | None = None
+
+    def layer_selection(self, model: "ModelConfig") -> tuple[str | tuple[str, ...], str]:
+        """``(selection, config key it comes from)``: this arm's override, or the study's
+        default ``[model] constrain``."""
+        if self.constrain is not None:
+            return self.constrain, f"arms.{self.name}.constrain"
+        return model.constrain, "model.constrain"
 
     @property
     def meaning(self) -> str:
@@ -245,6 +288,9 @@ class StudyConfig:
             "model": asdict(self.model),
             "budget": asdict(self.budget),
         }
+        overrides = {a.name: a.constrain for a in self.arms if a.constrain is not None}
+        if overrides:  # which weights an arm acts on changes its runs
+            payload["arm_constrain"] = overrides
         if self.data_path() is not None:
             payload["data"]["source"] = str(self.data_path().resolve())
         text = json.dumps(payload, sort_keys=True, default=str)
@@ -270,6 +316,9 @@ class StudyConfig:
         ensembles = {a.name: asdict(a.ensemble) for a in self.arms if a.ensemble is not None}
         if ensembles:  # absent otherwise: definitions of studies without ensembles unchanged
             out["ensembles"] = ensembles
+        constrain = {a.name: a.constrain for a in self.arms if a.constrain is not None}
+        if constrain:  # per-arm layer selections ([arms.NAME] constrain), when given
+            out["arm_constrain"] = constrain
         return out
 
 
@@ -418,8 +467,29 @@ def _parse_data(table: Mapping[str, Any], base_dir: Path) -> DataConfig:
     )
 
 
+def _parse_layer_selection(value: Any, where: str) -> str | tuple[str, ...]:
+    """``"hidden"``, ``"hidden+output"`` or a non-empty list of parameter-name patterns."""
+    hint = ("\"hidden\" (every Linear/Conv weight but the output layer's), \"hidden+output\", "
+            "or a list of parameter-name patterns such as [\"features.*.weight\", "
+            "\"fc1.weight\"]")
+    if isinstance(value, str):
+        if value in LAYER_SELECTIONS:
+            return value
+        raise _fail(f"'{where}' must be {hint}; got {value!r} (a single pattern goes in a "
+                    "list)")
+    if not isinstance(value, list) or not value:
+        raise _fail(f"'{where}' must be {hint}; got {value!r}")
+    for pattern in value:
+        if not isinstance(pattern, str) or not pattern.strip():
+            raise _fail(f"'{where}' patterns must be non-empty strings, got {pattern!r}")
+    if len(set(value)) != len(value):
+        raise _fail(f"'{where}' has repeated patterns, got {value!r}")
+    return tuple(value)
+
+
 def _parse_model(table: Mapping[str, Any]) -> ModelConfig:
-    _check_keys(table, ("widths", "activation", "factory"), "model")
+    _check_keys(table, ("widths", "activation", "factory", "constrain"), "model")
+    constrain = _parse_layer_selection(table.get("constrain", "hidden"), "model.constrain")
     factory = _get_str(table, "factory", "model", None)
     if factory is not None:
         if "widths" in table or "activation" in table:
@@ -429,7 +499,8 @@ def _parse_model(table: Mapping[str, Any]) -> ModelConfig:
         if not sep or not module or not func:
             raise _fail(f"'model.factory' must look like 'package.module:function', "
                         f"got {factory!r}")
-        return ModelConfig(widths=(), activation="relu", factory=factory)
+        return ModelConfig(widths=(), activation="relu", factory=factory,
+                           constrain=constrain)
     widths = table.get("widths", [64])
     if (not isinstance(widths, list) or not widths
             or not all(isinstance(w, int) and not isinstance(w, bool) and w >= 1
@@ -437,7 +508,7 @@ def _parse_model(table: Mapping[str, Any]) -> ModelConfig:
         raise _fail(f"'model.widths' must be a non-empty list of positive integers, "
                     f"got {widths!r}")
     activation = _get_str(table, "activation", "model", "relu", ACTIVATIONS)
-    return ModelConfig(widths=tuple(widths), activation=activation)
+    return ModelConfig(widths=tuple(widths), activation=activation, constrain=constrain)
 
 
 def _parse_budget(table: Mapping[str, Any]) -> BudgetConfig:
@@ -487,11 +558,19 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
         ensemble = None
         if "ensemble" in body:
             ensemble = _parse_ensemble(body["ensemble"], f"arms.{name}.ensemble")
+        if "constrain" in body and name not in SELECTING_ARMS:
+            what = ("weight decay acts on every parameter" if name == "weight_decay"
+                    else "the none arm changes no weight")
+            raise _fail(f"'arms.{name}.constrain' has no effect: {what}; 'constrain' applies "
+                        f"to {', '.join(SELECTING_ARMS)} (remove it here)")
+        constrain = None
+        if "constrain" in body:
+            constrain = _parse_layer_selection(body["constrain"], f"arms.{name}.constrain")
         if name == "none":
             _check_keys(body, ("ensemble",), "arms.none")
             arms[name] = ArmConfig(name, (0.0,), ensemble)
             continue
-        _check_keys(body, ("grid", "ensemble"), f"arms.{name}")
+        _check_keys(body, ("grid", "ensemble", "constrain"), f"arms.{name}")
         if "grid" not in body:
             raise _fail(f"'arms.{name}.grid' is missing; give a list of strengths "
                         f"({_STRENGTH_MEANING[name]})")
@@ -513,7 +592,7 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
             values.append(value)
         if len(set(values)) != len(values):
             raise _fail(f"'arms.{name}.grid' has repeated values, got {grid!r}")
-        arms[name] = ArmConfig(name, tuple(values), ensemble)
+        arms[name] = ArmConfig(name, tuple(values), ensemble, constrain)
     if BASELINE_ARM not in arms:
         raise _fail(f"'arms.{BASELINE_ARM}' is missing: every arm is compared against weight "
                     f"decay; add [arms.{BASELINE_ARM}] with a grid")

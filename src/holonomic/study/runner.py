@@ -50,7 +50,8 @@ from torch.nn import functional as F
 import holonomic as hn
 from holonomic.study import data as data_module
 from holonomic.study import storage
-from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
+from holonomic.study.arms import (ArmSetup, check_layer_selections, constraint_residual,
+                                  prepare_arm, weight_norms)
 from holonomic.study.config import StudyConfig, StudyConfigError, selection_metric
 from holonomic.study.data import Split, load_dataset
 from holonomic.study.models import build_model
@@ -308,7 +309,7 @@ def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str, t
         return _nan_metrics(task)
     outputs = {part: outputs_of(model, data[part][0]) for part in PARTS}
     out = task.run_metrics(outputs, targets)
-    out.update(weight_norms(model))
+    out.update(weight_norms(model, setup))
     out["constraint_residual"] = constraint_residual(model, setup)
     return {name: float(out[name]) for name in record_metric_names(task)}
 
@@ -351,7 +352,7 @@ def _train_fold(config: StudyConfig, spec: RunSpec, split: Any, fold: int,
     x_train, y_train = data["train"]
     n_train = len(y_train)
     model = build_model(config.model, x_train.shape[1], task.n_outputs, spec.seed, dtype)
-    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model)
+    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model, config)
     optimizer = make_optimizer(model.parameters(), config, setup.weight_decay,
                                spec.seed + _FOLD_SEED_OFFSET * fold)
     batch = config.budget.batch_size
@@ -388,7 +389,7 @@ def _train_fold(config: StudyConfig, spec: RunSpec, split: Any, fold: int,
         for part in PARTS:
             history[f"{part}_{headline}"].append(scores[part][headline])
             history[f"{part}_loss"].append(scores[part]["loss"])
-        history["mean_row_norm_hidden"].append(weight_norms(model)["mean_row_norm_hidden"])
+        history["mean_row_norm_hidden"].append(weight_norms(model, setup)["mean_row_norm_hidden"])
         history["constraint_residual"].append(constraint_residual(model, setup))
 
     for hook in hooks:
@@ -624,7 +625,8 @@ def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     done = storage.read_records(out_dir, keys)
     check_compatible(config, done, out_dir)
     pending = [s for s in specs if s.key not in done]
-    load_dataset(config)  # fail early on data errors, in this process
+    dataset = load_dataset(config)  # fail early on data errors, in this process
+    check_layer_selections(config, dataset.x.shape[1], dataset.n_classes or 1)  # and layers
 
     from tqdm.auto import tqdm
 
