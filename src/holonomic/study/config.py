@@ -4,7 +4,11 @@ A study file has five tables and an optional sixth::
 
     [study]   name, seeds, selection (val_<metric> of the task; default val_accuracy for
               classification, val_rmse for regression: see selection_metric)
-    [data]    source, target, train_size, val_fraction, test_fraction, standardize
+    [data]    source, target, task, train_size, val_fraction, test_fraction, standardize,
+              missing, drop_columns, features, split_column, group_column, val_source,
+              test_source, folds   (each key's meaning, default and allowed values:
+              DataConfig; an omitted train_size means every row left after the validation
+              and test parts)
     [model]   widths, activation   (or factory = "package.module:function"), constrain
     [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
               schedule, projection, dtype
@@ -66,7 +70,15 @@ DEFAULT_SELECTION = {"classification": "val_accuracy", "regression": "val_rmse"}
 #: its state every step (cheap: no host synchronisation) and writes a record every
 #: ``every`` steps plus one at the end of the run.
 DEFAULT_AUDIT_EVERY = 50
-BUILTIN_SOURCES = ("digits", "demo")
+#: Built-in data sources and their task (``data.task`` must agree when given).
+BUILTIN_TASKS = {"digits": "classification", "demo": "classification",
+                 "breast_cancer": "classification", "wine": "classification",
+                 "diabetes": "regression"}
+BUILTIN_SOURCES = tuple(BUILTIN_TASKS)
+DATA_TASKS = ("classification", "regression")
+MISSING_POLICIES = ("refuse", "drop", "mean")
+#: Most folds ``data.folds`` may ask for.
+MAX_FOLDS = 20
 SAMPLERS = ("adaptive", "langevin")
 #: Named layer selections of ``[model] constrain`` / ``[arms.NAME] constrain`` (besides a list
 #: of parameter-name patterns); see :class:`ModelConfig`.
@@ -94,14 +106,72 @@ class StudyConfigError(ValueError):
 
 @dataclass(frozen=True)
 class DataConfig:
-    """Where the data come from and how they are split (stratified, fixed by seed)."""
+    """Where the data come from, how they are read and how they are split (``[data]``).
+
+    Reading (details in :mod:`holonomic.study.data`):
+
+    * ``source`` (default ``"digits"``): a built-in set (``digits``, ``breast_cancer``,
+      ``wine``: classification; ``diabetes``: regression; ``demo``: invented data), or a
+      ``.csv`` / ``.npz`` file, relative to the study file or absolute.
+    * ``target`` (default ``"target"``): the CSV column to predict.
+    * ``task``: ``"classification"`` or ``"regression"``; omitted (``None``): inferred.
+      String labels, or integer-valued numbers with at most 50 distinct values, are
+      classification; any other numeric target is refused until ``task`` is given.
+    * ``missing`` (default ``"refuse"``): an empty, ``nan`` or ``inf`` feature or target is
+      refused (naming column and line); ``"drop"`` drops such rows; ``"mean"`` fills
+      missing features with the mean of each split's training part and drops rows with a
+      missing target.
+    * ``drop_columns`` (default none): CSV columns not to use; ``features`` (default: every
+      column that is not the target, split or group column): the feature columns to use,
+      in order. Give one or the other.
+
+    Splitting (each scheme fixed by the seed; see :func:`holonomic.study.data.describe_scheme`):
+
+    * hold-out (default): ``test_fraction`` (default 0.3) and ``val_fraction`` (default 0.2)
+      of all rows, stratified for classification, random for regression.
+    * ``split_column``: a CSV column of ``train`` / ``val`` / ``test``: the same split for
+      every seed (no fractions, folds or ``train_size`` with it).
+    * ``test_source`` (and ``val_source``): separate files with the same columns as
+      ``source``; without ``val_source`` the validation part is ``val_fraction`` of the
+      rows of ``source``.
+    * ``folds`` (2 to 20): k-fold cross-validation repeated once per seed; each fold is the
+      test part once, the validation part is ``val_fraction`` of the other folds.
+    * ``group_column``: rows sharing a value stay in one part (fractions then count groups).
+
+    ``train_size``: training rows, subsampled per seed from the training part; omitted
+    (``None``): every row left after the validation and test parts. ``standardize`` (default
+    true): features standardised with the training part's mean and standard deviation.
+    Keys that do not apply to the scheme are ``None`` (``val_fraction`` with
+    ``val_source`` or ``split_column``; ``test_fraction`` with ``test_source``,
+    ``split_column`` or ``folds``).
+    """
 
     source: str = "digits"
     target: str = "target"
     train_size: int | None = None
-    val_fraction: float = 0.2
-    test_fraction: float = 0.3
+    val_fraction: float | None = 0.2
+    test_fraction: float | None = 0.3
     standardize: bool = True
+    task: str | None = None
+    missing: str = "refuse"
+    drop_columns: tuple[str, ...] = ()
+    features: tuple[str, ...] | None = None
+    split_column: str | None = None
+    group_column: str | None = None
+    val_source: str | None = None
+    test_source: str | None = None
+    folds: int | None = None
+
+    @property
+    def scheme(self) -> str:
+        """``"holdout"``, ``"split_column"``, ``"files"`` or ``"folds"``."""
+        if self.split_column is not None:
+            return "split_column"
+        if self.test_source is not None:
+            return "files"
+        if self.folds is not None:
+            return "folds"
+        return "holdout"
 
 
 @dataclass(frozen=True)
@@ -428,42 +498,193 @@ def _parse_seeds(table: Mapping[str, Any]) -> tuple[int, ...]:
     raise _fail(f"'study.seeds' must be a count or a list of integers, got {value!r}")
 
 
-def _check_csv_target(path: Path, target: str) -> None:
-    with path.open(newline="") as handle:
-        header = next(csv.reader(handle), [])
-    columns = [h.strip() for h in header]
-    if target not in columns:
+def _csv_header(path: Path) -> list[str]:
+    """The header row of a CSV file (stripped names), read as UTF-8."""
+    try:
+        with path.open("rb") as handle:
+            first = handle.readline()
+    except OSError as exc:
+        raise _fail(f"cannot read data file {str(path)!r}: {exc}") from None
+    if first.startswith(b"\xef\xbb\xbf"):
+        first = first[3:]
+    try:
+        text = first.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise _fail(f"data file {str(path)!r} is not UTF-8 text: byte {exc.start} of line 1 "
+                    f"is {first[exc.start:exc.start + 1]!r}; save the file as UTF-8") from None
+    return [h.strip() for h in next(csv.reader([text.rstrip("\r\n")]), [])]
+
+
+def _check_csv_target(path: Path, target: str,
+                      columns: tuple[tuple[str, str], ...] = ()) -> None:
+    """Refuse a CSV file whose header lacks the target or a column named by another key
+    (``columns``: pairs of key and column name)."""
+    header = _csv_header(path)
+    listed = ", ".join(repr(h) if not h else h for h in header) or "(no header)"
+    if target not in header:
         raise _fail(f"target column 'data.target' = {target!r} is missing from {str(path)!r}; "
-                    f"columns: {', '.join(columns) or '(no header)'}")
+                    f"columns: {listed}")
+    for key, name in columns:
+        if name not in header:
+            raise _fail(f"'{key}' names column {name!r}, which is missing from {str(path)!r}; "
+                        f"columns: {listed}")
+
+
+_DATA_KEYS = ("source", "target", "task", "train_size", "val_fraction", "test_fraction",
+              "standardize", "missing", "drop_columns", "features", "split_column",
+              "group_column", "val_source", "test_source", "folds")
+#: Keys that name CSV columns (refused for .npz files and built-in sources).
+_CSV_ONLY_KEYS = ("drop_columns", "features", "split_column", "group_column")
+
+
+def _get_names(table: Mapping[str, Any], key: str, where: str) -> tuple[str, ...] | None:
+    if key not in table:
+        return None
+    value = table[key]
+    if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+        raise _fail(f"'{where}.{key}' must be a list of column names, got {value!r}")
+    if len(set(value)) != len(value):
+        raise _fail(f"'{where}.{key}' has repeated names, got {value!r}")
+    return tuple(value)
+
+
+def _data_file(value: str, key: str, base_dir: Path, suffix: str | None) -> Path:
+    path = Path(value)
+    if suffix is not None and path.suffix.lower() != suffix:
+        raise _fail(f"'data.{key}' must be a {suffix} file like 'data.source', got {value!r}")
+    full = path if path.is_absolute() else base_dir / path
+    if not full.is_file():
+        raise _fail(f"'data.{key}' file does not exist: {str(full)!r}; give a path "
+                    "relative to the study file or an absolute path")
+    return full
 
 
 def _parse_data(table: Mapping[str, Any], base_dir: Path) -> DataConfig:
-    _check_keys(table, ("source", "target", "train_size", "val_fraction", "test_fraction",
-                        "standardize"), "data")
+    """``[data]``: see :class:`DataConfig`; combinations of keys are checked here."""
+    _check_keys(table, _DATA_KEYS, "data")
+    given = set(table)
+
+    def refuse_together(key: str, others: tuple[str, ...], why: str) -> None:
+        if key in given:
+            for other in others:
+                if other in given:
+                    raise _fail(f"'data.{key}' and 'data.{other}' cannot be given together: "
+                                f"{why}")
+
     source = _get_str(table, "source", "data", "digits")
-    if source not in BUILTIN_SOURCES:
-        path = Path(source)
-        if path.suffix.lower() not in (".csv", ".npz"):
+    target = _get_str(table, "target", "data", "target")
+    task = _get_str(table, "task", "data", None, DATA_TASKS)
+    missing = _get_str(table, "missing", "data", "refuse", MISSING_POLICIES)
+    drop_columns = _get_names(table, "drop_columns", "data") or ()
+    features = _get_names(table, "features", "data")
+    if features is not None and not features:
+        raise _fail("'data.features' is empty; list at least one feature column or omit it "
+                    "(every column that is not the target, split or group column)")
+    split_column = _get_str(table, "split_column", "data", None)
+    group_column = _get_str(table, "group_column", "data", None)
+    val_source = _get_str(table, "val_source", "data", None)
+    test_source = _get_str(table, "test_source", "data", None)
+    folds = _get_int(table, "folds", "data", None, minimum=2)
+    if folds is not None and folds > MAX_FOLDS:
+        raise _fail(f"'data.folds' must be between 2 and {MAX_FOLDS}, got {folds}")
+
+    refuse_together("split_column", ("val_fraction", "test_fraction", "folds", "test_source",
+                                     "val_source", "group_column", "train_size"),
+                    "the split column fixes the training, validation and test rows (the same "
+                    "split for every seed); remove the other key")
+    refuse_together("folds", ("test_fraction", "test_source"),
+                    "with k-fold each fold is the test part in turn; remove the other key")
+    refuse_together("test_source", ("test_fraction",),
+                    "the test part is the test file; remove 'data.test_fraction'")
+    refuse_together("val_source", ("val_fraction",),
+                    "the validation part is the validation file; remove 'data.val_fraction'")
+    if "val_source" in given and "test_source" not in given:
+        raise _fail("'data.val_source' needs 'data.test_source' (the test file); give both, "
+                    "or only 'data.test_source' to carve the validation part from "
+                    "'data.source' by 'data.val_fraction'")
+    if "val_source" in given and "train_size" in given:
+        raise _fail("'data.train_size' cannot be given with 'data.val_source' and "
+                    "'data.test_source': the files fix every part (the same split for every "
+                    "seed); remove 'data.train_size' or shorten the training file")
+    if features is not None and drop_columns:
+        raise _fail("give 'data.features' (the columns to use) or 'data.drop_columns' (the "
+                    "columns not to use), not both")
+    roles = {"data.target": target}
+    for key, name in (("data.split_column", split_column), ("data.group_column", group_column)):
+        if name is None:
+            continue
+        for other, taken in roles.items():
+            if name == taken:
+                raise _fail(f"'{key}' = {name!r} is also '{other}'; name another column")
+        roles[key] = name
+    for key, names in (("data.drop_columns", drop_columns), ("data.features", features or ())):
+        for name in names:
+            for other, taken in roles.items():
+                if name == taken:
+                    raise _fail(f"'{key}' lists {name!r}, which is '{other}' (never a "
+                                "feature); remove it from the list")
+
+    if source in BUILTIN_SOURCES:
+        csv_keys = [k for k in _CSV_ONLY_KEYS + ("val_source", "test_source") if k in given]
+        if csv_keys:
+            raise _fail(f"'data.{csv_keys[0]}' applies to .csv files; 'data.source' is the "
+                        f"built-in set {source!r}")
+        if task is not None and task != BUILTIN_TASKS[source]:
+            raise _fail(f"'data.task' = {task!r} does not fit the built-in set {source!r} "
+                        f"(a {BUILTIN_TASKS[source]} set); remove 'data.task'")
+    else:
+        suffix = Path(source).suffix.lower()
+        if suffix not in (".csv", ".npz"):
             raise _fail(f"'data.source' must be one of {', '.join(BUILTIN_SOURCES)} or a "
                         f".csv / .npz file, got {source!r}")
-        full = path if path.is_absolute() else base_dir / path
-        if not full.is_file():
-            raise _fail(f"'data.source' file does not exist: {str(full)!r}; give a path "
-                        "relative to the study file or an absolute path")
-        if full.suffix.lower() == ".csv":
-            _check_csv_target(full, _get_str(table, "target", "data", "target"))
-    val_fraction = _get_float(table, "val_fraction", "data", 0.2, 0.0, 1.0, True, True)
-    test_fraction = _get_float(table, "test_fraction", "data", 0.3, 0.0, 1.0, True, True)
-    if val_fraction + test_fraction >= 1.0:
+        if suffix == ".npz":
+            npz_keys = [k for k in _CSV_ONLY_KEYS if k in given]
+            if npz_keys:
+                raise _fail(f"'data.{npz_keys[0]}' names CSV columns; 'data.source' is a "
+                            f".npz file (arrays x and y): use a .csv file or remove the key")
+        files = [_data_file(source, "source", base_dir, None)]
+        for key, value in (("val_source", val_source), ("test_source", test_source)):
+            if value is not None:
+                full = _data_file(value, key, base_dir, suffix)
+                if any(full.resolve() == other.resolve() for other in files):
+                    raise _fail(f"'data.{key}' = {value!r} is a file already used for another "
+                                "part; training, validation and test files must differ")
+                files.append(full)
+        if suffix == ".csv":
+            columns = tuple((f"data.{key}", name) for key, name in (
+                ("split_column", split_column), ("group_column", group_column))
+                if name is not None)
+            columns += tuple(("data.features", n) for n in features or ())
+            columns += tuple(("data.drop_columns", n) for n in drop_columns)
+            for full in files:
+                _check_csv_target(full, target, columns)
+
+    scheme_has_val_fraction = split_column is None and val_source is None
+    scheme_has_test_fraction = split_column is None and test_source is None and folds is None
+    val_fraction = (_get_float(table, "val_fraction", "data", 0.2, 0.0, 1.0, True, True)
+                    if scheme_has_val_fraction else None)
+    test_fraction = (_get_float(table, "test_fraction", "data", 0.3, 0.0, 1.0, True, True)
+                     if scheme_has_test_fraction else None)
+    if (val_fraction is not None and test_fraction is not None
+            and val_fraction + test_fraction >= 1.0):
         raise _fail("'data.val_fraction' + 'data.test_fraction' must be < 1, got "
                     f"{val_fraction} + {test_fraction}")
     return DataConfig(
         source=source,
-        target=_get_str(table, "target", "data", "target"),
+        target=target,
         train_size=_get_int(table, "train_size", "data", None, minimum=2),
         val_fraction=val_fraction,
         test_fraction=test_fraction,
         standardize=_get_bool(table, "standardize", "data", True),
+        task=task,
+        missing=missing,
+        drop_columns=drop_columns,
+        features=features,
+        split_column=split_column,
+        group_column=group_column,
+        val_source=val_source,
+        test_source=test_source,
+        folds=folds,
     )
 
 
