@@ -15,13 +15,10 @@ optimizer step with the model and the optimizer (see :class:`StepHook`); each ho
 from __future__ import annotations
 
 import math
-import os
 import time
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from dataclasses import dataclass
-from multiprocessing import get_context
 from pathlib import Path
-from typing import Any, Callable, Iterable, Protocol, Sequence
+from typing import Any, Iterable, Protocol, Sequence
 
 import numpy as np
 import torch
@@ -31,7 +28,7 @@ from torch.nn import functional as F
 import holonomic as hn
 from holonomic.study import storage
 from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
-from holonomic.study.config import StudyConfig, StudyConfigError
+from holonomic.study.config import StudyConfig
 from holonomic.study.data import Split, load_dataset, make_split
 from holonomic.study.models import build_model
 from holonomic.study.stats import expected_calibration_error
@@ -44,7 +41,6 @@ __all__ = [
     "make_optimizer",
     "minibatch_step",
     "plan_runs",
-    "run_all",
     "train_run",
 ]
 
@@ -68,7 +64,7 @@ class RunSpec:
         It names the strength rather than its grid position, so a study whose grid grows
         reuses the runs it already has and never mistakes one strength for another.
         """
-        return f"{self.arm}-{float(self.strength)!r}-s{self.seed}"
+        return storage.run_key(self.arm, self.strength, self.seed)
 
 
 def plan_runs(config: StudyConfig) -> list[RunSpec]:
@@ -306,99 +302,14 @@ def _final_metrics(model: nn.Module, data: dict, setup: ArmSetup, status: str) -
 
 
 # ---------------------------------------------------------------------------------------
-# Running many runs
+# Running many runs: moved to holonomic.study.execution (these names still import from here)
+
+_MOVED_TO_EXECUTION = ("run_all", "check_compatible", "_execute", "_worker_init", "_context")
 
 
-def _execute(config: StudyConfig, spec: RunSpec, out_dir: str) -> str:
-    """Train one run and store its record (its audit file is in place before)."""
-    storage.write_record(out_dir, train_run(config, spec, out_dir=out_dir))
-    return spec.key
+def __getattr__(name: str):
+    if name in _MOVED_TO_EXECUTION:
+        from holonomic.study import execution
 
-
-def _worker_init() -> None:
-    torch.set_num_threads(1)
-    os.environ.setdefault("OMP_NUM_THREADS", "1")
-
-
-def _context():
-    """``fork`` where available (workers start at once: torch is already imported; the
-    parent has run no torch computation), else ``spawn``."""
-    import multiprocessing
-
-    if "fork" in multiprocessing.get_all_start_methods():
-        return get_context("fork")
-    return get_context("spawn")
-
-
-def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str | Path) -> None:
-    """Refuse to mix runs of a different study (data, model, budget or an arm's ensemble
-    settings changed)."""
-    expected = config.training_fingerprint()
-    for key, record in records.items():
-        spec = RunSpec(record.get("arm", "?"), 0, float(record.get("strength", "nan")),
-                       record.get("seed", -1))
-        if spec.key != key:
-            raise StudyConfigError(f"study config: {str(out_dir)!r} holds a file {key!r} whose "
-                                   f"record is for run {spec.key!r}; delete it")
-        if record.get("fingerprint") != expected:
-            raise StudyConfigError(
-                f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "
-                "data, model or budget settings; use a new --out directory or delete "
-                f"{str(storage.runs_dir(out_dir))!r}")
-        wanted = config.ensemble_settings(spec.arm)
-        if record.get("ensemble_settings") != wanted:
-            raise StudyConfigError(
-                f"study config: {str(out_dir)!r} holds run {key!r} made with ensemble settings "
-                f"{record.get('ensemble_settings')}, the study asks for {wanted} "
-                f"([arms.{spec.arm}.ensemble]); use a new --out directory or delete that arm's "
-                f"runs ({spec.arm}-*.json) from {str(storage.runs_dir(out_dir))!r}")
-
-
-def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
-            progress: bool = True, specs: Sequence[RunSpec] | None = None,
-            execute: Callable[[StudyConfig, RunSpec, str], str] = _execute) -> dict[str, dict]:
-    """Run every run not yet stored under ``out_dir/runs`` and return all records.
-
-    Finished runs are skipped, so an interrupted study resumes where it stopped. With
-    ``workers > 1`` runs go to a pool of spawned processes (torch single-threaded in each).
-    A progress bar (tqdm, to stderr) shows the count and an ETA over the whole study.
-    """
-    if workers < 1:
-        raise ValueError(f"workers must be >= 1, got {workers}")
-    out_dir = str(out_dir)
-    storage.runs_dir(out_dir).mkdir(parents=True, exist_ok=True)
-    storage.audits_dir(out_dir).mkdir(parents=True, exist_ok=True)
-    storage.remove_stale_temporaries(out_dir)
-    specs = plan_runs(config) if specs is None else list(specs)
-    keys = [s.key for s in specs]
-    done = storage.read_records(out_dir, keys)
-    check_compatible(config, done, out_dir)
-    pending = [s for s in specs if s.key not in done]
-    load_dataset(config)  # fail early on data errors, in this process
-
-    from tqdm.auto import tqdm
-
-    bar = tqdm(total=len(specs), initial=len(specs) - len(pending), disable=not progress,
-               desc=f"study {config.name}", unit="run", dynamic_ncols=True)
-    try:
-        if workers == 1 or len(pending) <= 1:
-            for spec in pending:
-                execute(config, spec, out_dir)
-                bar.update(1)
-        else:
-            with ProcessPoolExecutor(max_workers=workers, mp_context=_context(),
-                                     initializer=_worker_init) as pool:
-                futures = {pool.submit(execute, config, spec, out_dir) for spec in pending}
-                try:
-                    while futures:
-                        finished, futures = wait(futures, return_when=FIRST_COMPLETED)
-                        for future in finished:
-                            future.result()
-                            bar.update(1)
-                except BaseException:
-                    for future in futures:
-                        future.cancel()
-                    raise
-    finally:
-        bar.close()
-    return storage.read_records(out_dir, keys)
+        return getattr(execution, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
