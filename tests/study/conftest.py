@@ -6,7 +6,7 @@ import pytest
 
 from holonomic.study import parse_config
 from holonomic.study.demo import tomllib
-from holonomic.study.runner import _execute, run_all
+from holonomic.study.execution import _execute, run_all
 
 #: The demo study shrunk to seconds: 2 seeds, 2 grid points, 3 epochs, 64 training rows.
 TINY_TOML = """

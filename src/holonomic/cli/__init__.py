@@ -20,6 +20,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="holonomic",
         description="Constrained Langevin training, studies and audits.",
+        epilog="Exit statuses: 0 success, 2 usage or input errors (a message, no traceback), "
+               "130 interrupted; each subcommand's help lists its own (holonomic study --help).",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in _SUBCOMMAND_MODULES:
@@ -34,12 +36,17 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    if getattr(args, "func", None) is None:
-        parser.print_help(sys.stderr)
-        return 2
-    return int(args.func(args) or 0)
+    """Run the command line; returns the exit status (argparse usage errors exit with 2)."""
+    try:
+        parser = build_parser()
+        args = parser.parse_args(argv)
+        if getattr(args, "func", None) is None:
+            parser.print_help(sys.stderr)
+            return 2
+        return int(args.func(args) or 0)
+    except KeyboardInterrupt:  # Ctrl-C before a subcommand handles it (e.g. while importing)
+        print("\nholonomic: interrupted", file=sys.stderr)
+        return 130
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -20,6 +20,19 @@ On a cluster: run `--shard i/n` on each machine against a shared --out (i is 0-b
 `--report-only` once all shards are done. Shards write only their own runs; --report-only
 refuses, with exit status 1, while any run is missing, and names the missing runs.
 See docs/cluster.md.
+
+A refused command changes nothing on disk: the study file, the data, the runs already in
+--out and the model are checked before --out is created or written to. With --workers N
+the workers end with this command, however it ends.
+"""
+
+_EPILOG = """exit statuses:
+  0    success (for --shard: that shard's runs are done)
+  1    --report-only: the study is incomplete (the missing runs are named); nothing written
+  2    usage, study file, data, model factory or output errors (the message says what to
+       change; a full disk: free space and rerun the same command, finished runs are kept)
+  130  interrupted (Ctrl-C); finished runs are kept, rerun the same command to resume
+  143  terminated (SIGTERM; 129 for SIGHUP); finished runs are kept, rerun to resume
 """
 
 
@@ -27,7 +40,8 @@ def register(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
     """Add the ``study`` subcommand to ``subparsers`` and set its ``func``."""
     parser = subparsers.add_parser(
         "study", help="compare constraints against weight decay (train, select, report)",
-        description=_DESCRIPTION, formatter_class=argparse.RawDescriptionHelpFormatter)
+        description=_DESCRIPTION, epilog=_EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("config", nargs="?", metavar="FILE.toml",
                         help="study file (see examples/digits.toml)")
     parser.add_argument("--demo", action="store_true",
@@ -42,6 +56,11 @@ def register(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
     parser.add_argument("--report-only", action="store_true",
                         help="train nothing: merge the finished runs in --out into the report "
                              "(exit status 1, naming them, if runs are missing)")
+    parser.add_argument("--rerun-invalid", action="store_true",
+                        help="move run files in --out that are not valid run records (damaged, "
+                             "edited, foreign) aside into OUT/invalid/<time>/ with their audit "
+                             "and weights (never deleted; each move is printed) and redo those "
+                             "runs; without it such a file stops the study with an error")
     parser.add_argument("--no-plots", action="store_true", help="write no PNG plots")
     parser.add_argument("--quiet", action="store_true",
                         help="no progress bar; print only the output location (for logs)")
@@ -58,6 +77,7 @@ def _main(args: argparse.Namespace) -> int:
         report_study,
         run_study,
     )
+    from holonomic.study.execution import StudyTerminated, terminate_on_signals, usable_cpus
     from holonomic.study.sharding import ShardError, parse_shard
 
     def error(message: str, status: int = 2) -> int:
@@ -70,20 +90,30 @@ def _main(args: argparse.Namespace) -> int:
         return error(f"--workers must be >= 1, got {args.workers}")
     if args.report_only and args.shard is not None:
         return error("--report-only merges every shard's runs; drop --shard")
+    if args.report_only and args.rerun_invalid:
+        return error("--report-only trains nothing, so it cannot redo invalid runs; run the "
+                     "study with --rerun-invalid first (without --report-only)")
     shard = None
     if args.shard is not None:
         try:
             shard = parse_shard(args.shard)
         except ShardError as exc:
             return error(str(exc))
+    cpus = usable_cpus()
+    if args.workers > cpus and not args.report_only:
+        print(f"holonomic study: warning: --workers {args.workers} is more than the {cpus} "
+              "CPU(s) this process may use; the workers will share them (slower, same results)",
+              file=sys.stderr)
     started = time.perf_counter()
     try:
-        config = demo_config() if args.demo else load_config(args.config)
-        if args.report_only:
-            summary = report_study(config, args.out, plots=not args.no_plots)
-        else:
-            summary = run_study(config, args.out, workers=args.workers,
-                                progress=not args.quiet, plots=not args.no_plots, shard=shard)
+        with terminate_on_signals():
+            config = demo_config() if args.demo else load_config(args.config)
+            if args.report_only:
+                summary = report_study(config, args.out, plots=not args.no_plots)
+            else:
+                summary = run_study(config, args.out, workers=args.workers,
+                                    progress=not args.quiet, plots=not args.no_plots,
+                                    shard=shard, rerun_invalid=args.rerun_invalid)
     except StudyConfigError as exc:
         return error(str(exc))
     except IncompleteStudyError as exc:
@@ -92,6 +122,10 @@ def _main(args: argparse.Namespace) -> int:
         print("\nholonomic study: interrupted; finished runs are saved under "
               f"{args.out}/runs; rerun the same command to resume", file=sys.stderr)
         return 130
+    except StudyTerminated as exc:
+        print(f"\nholonomic study: {exc}; finished runs are saved under {args.out}/runs; "
+              "rerun the same command to resume", file=sys.stderr)
+        return exc.exit_status
     elapsed = time.perf_counter() - started
     runs = summary["runs"]
     if shard is not None:

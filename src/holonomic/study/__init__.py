@@ -8,10 +8,15 @@ phase (``[arms.NAME.ensemble]``: sampling after training, :mod:`holonomic.study.
 the report then compares the ensemble with the trained network. Command line:
 ``holonomic study FILE.toml --out DIR`` or ``holonomic study --demo --out DIR``; on a
 cluster, ``--shard i/n`` per machine, then ``--report-only`` (docs/cluster.md).
+
+A refused command changes nothing on disk: the data, the stored runs (validated, and of
+the same study and the same data contents) and the model are checked before the output
+directory is created or ``study.json`` written (:mod:`holonomic.study.execution`).
 """
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -23,13 +28,16 @@ from holonomic.study.config import (
     parse_config,
 )
 from holonomic.study.demo import demo_config
+from holonomic.study.storage import InvalidRunRecord, StudyOutputError
 from holonomic.study.trained import class_probabilities, load_trained, predict
 
 __all__ = [
     "ARM_NAMES",
     "IncompleteStudyError",
+    "InvalidRunRecord",
     "StudyConfig",
     "StudyConfigError",
+    "StudyOutputError",
     "class_probabilities",
     "demo_config",
     "load_config",
@@ -53,18 +61,30 @@ class IncompleteStudyError(RuntimeError):
         self.missing = missing
 
 
-def _definition(config: StudyConfig) -> dict[str, Any]:
-    return {**config.to_dict(), "training_fingerprint": config.training_fingerprint()}
+def _definition(config: StudyConfig, data_fingerprint: str) -> dict[str, Any]:
+    return {**config.to_dict(), "training_fingerprint": config.training_fingerprint(),
+            "data_fingerprint": data_fingerprint}
 
 
 def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
               progress: bool = True, plots: bool = True,
-              shard: tuple[int, int] | None = None) -> dict[str, Any]:
+              shard: tuple[int, int] | None = None,
+              rerun_invalid: bool = False) -> dict[str, Any]:
     """Run (or resume) a study into ``out_dir`` and write every output.
 
     Returns the summary (the contents of ``summary.json``). Finished runs found under
     ``out_dir/runs`` are reused, so rerunning after an interruption only trains what is
     missing. Every run is audited (``out_dir/audits/<run key>.jsonl``).
+
+    Nothing is created or written before every check has passed: the data load, the stored
+    runs are valid run records (:class:`InvalidRunRecord` otherwise) of this study made on
+    the same data (``StudyConfigError`` otherwise: training fingerprint, ensemble settings,
+    data fingerprint), and a model factory builds. Then ``out_dir`` is created and
+    ``study.json`` written (it records the data fingerprint too).
+
+    With ``rerun_invalid``, invalid run files are not an error: they (with their audit and
+    weights files) are moved into ``out_dir/invalid/<time>/`` (never deleted; each move is
+    printed to stderr) and their runs are trained again.
 
     With ``shard=(i, n)`` (0-based ``i``, see :mod:`holonomic.study.sharding`) only shard
     ``i``'s runs are trained and no shared output is written (results.csv, summary.json,
@@ -73,18 +93,35 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     "failed", "diverged"}, "keys": [...]}``. Every shard must use the same study and the
     same ``n``; ``out_dir/study.json`` records them and a mismatch raises
     :class:`StudyConfigError`.
+
+    Raises:
+        StudyConfigError: refused (nothing changed on disk), or :class:`StudyOutputError`
+            (a subclass) when a file cannot be written (disk full: free space and rerun).
     """
     from holonomic.study import storage
-    from holonomic.study.runner import check_selection, plan_runs, run_all
+    from holonomic.study.execution import data_fingerprint, prepare_runs, run_all
+    from holonomic.study.runner import check_selection, plan_runs
     from holonomic.study.sharding import shard_runs
 
     check_selection(config)  # a selection metric the task lacks: refused before any output
-    Path(out_dir).mkdir(parents=True, exist_ok=True)
-    storage.write_study_record(out_dir, _definition(config), None if shard is None else shard[1])
+    specs = plan_runs(config)
+    if shard is not None:
+        specs = shard_runs(specs, *shard)
+    invalid: list[InvalidRunRecord] | None = [] if rerun_invalid else None
+    prepare_runs(config, out_dir, specs, invalid)
+    definition = _definition(config, data_fingerprint(config))
+    storage.make_output_dir(out_dir)
+    storage.write_study_record(out_dir, definition, None if shard is None else shard[1])
+    if invalid:
+        moved = storage.move_aside(out_dir, [error.key for error in invalid])
+        for error in invalid:
+            print(f"holonomic study: {error.path!r} is not a valid run record "
+                  f"({error.problem}); its run is redone", file=sys.stderr)
+        for source, target in moved:
+            print(f"holonomic study: moved {str(source)!r} to {str(target)!r}", file=sys.stderr)
     if shard is None:
         records = run_all(config, out_dir, workers=workers, progress=progress)
         return _write_report(config, out_dir, records, plots)
-    specs = shard_runs(plan_runs(config), *shard)
     records = run_all(config, out_dir, workers=workers, progress=progress, specs=specs)
     statuses = [records[s.key]["status"] for s in specs]
     return {"shard": list(shard),
@@ -97,18 +134,22 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
 def report_study(config: StudyConfig, out_dir: str | Path, plots: bool = True) -> dict[str, Any]:
     """Merge the finished runs under ``out_dir`` into results.csv, summary.json, report.md.
 
-    Trains nothing. Refuses (:class:`IncompleteStudyError`, listing the missing runs and
-    their plan numbers) unless every run of the study is finished: a report over a subset
-    would choose settings from fewer seeds for some arms and break the pairing by seed.
-    Runs of a different study (data, model or budget) are refused as in :func:`run_study`.
+    Trains nothing and, when it refuses, writes nothing. Refuses (:class:`IncompleteStudyError`,
+    listing the missing runs and their plan numbers) unless every run of the study is
+    finished: a report over a subset would choose settings from fewer seeds for some arms
+    and break the pairing by seed. Invalid run files and runs of a different study (data
+    settings or contents, model or budget) are refused as in :func:`run_study`.
     """
     from holonomic.study import storage
-    from holonomic.study.runner import check_compatible, plan_runs
+    from holonomic.study.execution import check_compatible, data_fingerprint
+    from holonomic.study.runner import plan_runs
     from holonomic.study.sharding import missing_runs_message
 
+    storage.check_output_dir(out_dir)
     specs = plan_runs(config)
+    fingerprint = data_fingerprint(config)
     records = storage.read_records(out_dir, [s.key for s in specs])
-    check_compatible(config, records, out_dir)
+    check_compatible(config, records, out_dir, fingerprint)
     missing = [(k, s.key) for k, s in enumerate(specs) if s.key not in records]
     if missing:
         raise IncompleteStudyError(missing_runs_message(missing, len(specs)), missing)

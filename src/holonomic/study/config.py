@@ -1,22 +1,46 @@
 """Study configuration: parse and validate a study file (TOML).
 
-A study file has five tables and an optional sixth::
+Every key, with its default and allowed values (the dataclasses below give the details;
+the README has the same list as tables):
 
-    [study]   name, seeds, selection (val_<metric> of the task; default val_accuracy for
-              classification, val_rmse for regression: see selection_metric)
-    [data]    source, target, task, train_size, val_fraction, test_fraction, standardize,
-              missing, drop_columns, features, split_column, group_column, val_source,
-              test_source, folds   (each key's meaning, default and allowed values:
-              DataConfig; an omitted train_size means every row left after the validation
-              and test parts)
-    [model]   widths, activation   (or factory = "package.module:function"), constrain
-    [budget]  epochs, batch_size, step + friction  (or lr + momentum), temperature,
-              schedule, projection, dtype
-    [arms.NAME]  grid = [...]      NAME in none, weight_decay, max_norm, fixed_norm, orthonormal;
-                 constrain         (optional, max_norm / fixed_norm / orthonormal only)
-    [arms.NAME.ensemble]           (optional) temperature, samples, every, burn_in, sampler,
-                                   step, friction: a sampling phase after training
-    [audit]   every                (optional, default 50: steps between audit records)
+``[study]``
+    ``name`` (default: the file's stem); ``seeds`` (default 5): a count (>= 2) or a list of
+    distinct non-negative integers; ``selection``: ``val_<metric>`` for a metric of the task
+    (classification: ``accuracy``, ``balanced_accuracy``, ``macro_f1``, ``roc_auc`` (two
+    classes only), ``loss``; regression: ``rmse``, ``r2``, ``mae``, ``loss``); default
+    ``val_accuracy`` or ``val_rmse`` (:func:`selection_metric`).
+``[data]`` (:class:`DataConfig`)
+    ``source`` (default ``"digits"``; also ``breast_cancer``, ``wine``, ``diabetes``,
+    ``demo`` (invented), or a ``.csv`` / ``.npz`` path relative to the study file);
+    ``target`` (``"target"``); ``task`` (inferred; ``"classification"`` |
+    ``"regression"``); ``missing`` (``"refuse"`` | ``"drop"`` | ``"mean"``);
+    ``drop_columns`` (``[]``) or ``features`` (every other column); ``standardize``
+    (``true``); the split: ``val_fraction`` (0.2) and ``test_fraction`` (0.3) of all rows,
+    or ``split_column``, or ``test_source`` / ``val_source`` (separate files), or
+    ``folds`` (2..20), optionally with ``group_column``; ``train_size`` (omitted: every row
+    left after the validation and test parts).
+``[model]`` (:class:`ModelConfig`)
+    ``widths`` (``[64]``) and ``activation`` (``"relu"`` | ``"tanh"`` | ``"gelu"`` |
+    ``"silu"``), or ``factory = "module:function"`` called as
+    ``function(in_features, n_outputs)`` (``n_outputs``: the number of classes, 1 for
+    regression; the study file's folder is on the import path); ``constrain``
+    (``"hidden"`` | ``"hidden+output"`` | a list of parameter-name patterns).
+``[budget]`` (:class:`BudgetConfig`)
+    ``epochs`` (30), ``batch_size`` (32), ``lr`` (0.05) + ``momentum`` (0.9) or ``step`` +
+    ``friction`` (1.0), ``temperature`` (0.0), ``schedule`` (``"constant"`` |
+    ``"cosine"``), ``projection`` (``"rattle"`` | ``"geodesic"``), ``dtype``
+    (``"float32"`` | ``"float64"``).
+``[arms.NAME]`` (:class:`ArmConfig`), NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
+    ``grid``: a list of strengths (not for ``none``; every tuned arm the same length;
+    weight decay >= 0, the others > 0); ``constrain`` (max_norm, fixed_norm, orthonormal
+    only): overrides ``model.constrain``. ``[arms.weight_decay]`` is required (the
+    baseline).
+``[arms.NAME.ensemble]`` (optional, :class:`EnsembleConfig`; not with ``data.folds``)
+    ``temperature`` (> 0, required), ``samples`` (>= 4, required), ``every`` (1),
+    ``burn_in`` (one epoch of steps), ``sampler`` (``"adaptive"`` | ``"langevin"``),
+    ``step``, ``friction`` (default: the budget's, rescaled to the force ``N x gradient``).
+``[audit]``
+    ``every`` (50): optimizer steps between audit records.
 
 Every error is a :class:`StudyConfigError` (a ``ValueError``) whose message names the key
 and the allowed values, e.g. ``study config: unknown key 'data.trian_size'; allowed keys in
@@ -179,8 +203,9 @@ class ModelConfig:
     """An MLP (``widths``, ``activation``) or a user factory ``"package.module:function"``,
     and which weights the constraint and max-norm arms act on (``constrain``).
 
-    A factory is called as ``factory(in_features, n_classes)`` and returns a
-    ``torch.nn.Module``.
+    A factory is called as ``factory(in_features, n_outputs)`` (``n_outputs``: the number of
+    classes, or 1 for regression) and returns a ``torch.nn.Module``; a module beside the
+    study file is found (the study file's folder is on the import path while importing).
 
     ``constrain`` (default ``"hidden"``) is the study's default for the arms ``max_norm``,
     ``fixed_norm`` and ``orthonormal`` (each may override it with ``[arms.NAME] constrain``):
@@ -215,9 +240,10 @@ class BudgetConfig:
 
     Either ``step`` (h) and ``friction`` (gamma) or SGD-style ``lr`` (eta) and ``momentum``
     (mu); the two are related by ``mu = exp(-gamma h)``, ``eta = h^2 (1 + mu) / 2``
-    (``holonomic.Langevin.from_sgd``). ``temperature`` is in units of the mean minibatch
-    cross-entropy (no ``dataset_size`` scaling), so ``temperature = 1 / n_train`` is the
-    Bayesian posterior of the mean loss.
+    (``holonomic.Langevin.from_sgd``). ``temperature`` is in units of the mean minibatch loss
+    (cross-entropy, or half the mean squared error of standardised targets for regression:
+    :mod:`holonomic.study.tasks`) with no ``dataset_size`` scaling, so ``temperature = 1 /
+    n_train`` is the Bayesian posterior of that loss.
     """
 
     epochs: int = 30
@@ -257,7 +283,9 @@ class EnsembleConfig:
 
     .. math::  \pi(W) \propto \exp\bigl(-N\,[\bar L(W) + \tfrac{\lambda}{2}|W|^2] / T\bigr)
 
-    on the arm's constraint set, with :math:`\bar L` the mean training cross-entropy,
+    on the arm's constraint set, with :math:`\bar L` the mean training loss (cross-entropy,
+    or half the mean squared error of standardised targets: a Gaussian likelihood with noise
+    variance ``T`` in standardised units, see :mod:`holonomic.study.tasks`),
     :math:`N` the training-set size (``dataset_size = N``), :math:`\lambda` the arm's weight
     decay (0 except for the weight-decay arm) and :math:`T` = ``temperature``: ``T = 1`` is
     the Bayesian posterior of that model and prior, ``T < 1`` a cold posterior. Mini-batches

@@ -32,14 +32,10 @@ optimizer step with the model and the optimizer (see :class:`StepHook`); each ho
 from __future__ import annotations
 
 import math
-import os
 import time
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from contextlib import contextmanager
-from dataclasses import dataclass, field, replace
-from multiprocessing import get_context
+from dataclasses import dataclass, field
 from pathlib import Path
-from types import SimpleNamespace
 from typing import Any, Callable, Iterable, Iterator, Protocol, Sequence
 
 import numpy as np
@@ -48,12 +44,10 @@ from torch import nn
 from torch.nn import functional as F
 
 import holonomic as hn
-from holonomic.study import data as data_module
 from holonomic.study import storage
-from holonomic.study.arms import (ArmSetup, check_layer_selections, constraint_residual,
-                                  prepare_arm, weight_norms)
+from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
 from holonomic.study.config import StudyConfig, StudyConfigError, selection_metric
-from holonomic.study.data import Split, load_dataset
+from holonomic.study.data import Dataset, Split, load_dataset, make_splits
 from holonomic.study.models import build_model
 from holonomic.study.tasks import PARTS, Task
 
@@ -71,7 +65,6 @@ __all__ = [
     "outputs_of",
     "plan_runs",
     "record_metric_names",
-    "run_all",
     "study_task",
     "train_run",
 ]
@@ -101,7 +94,7 @@ class RunSpec:
         It names the strength rather than its grid position, so a study whose grid grows
         reuses the runs it already has and never mistakes one strength for another.
         """
-        return f"{self.arm}-{float(self.strength)!r}-s{self.seed}"
+        return storage.run_key(self.arm, self.strength, self.seed)
 
 
 def plan_runs(config: StudyConfig) -> list[RunSpec]:
@@ -215,49 +208,21 @@ def _evaluate(model: nn.Module, x: torch.Tensor, y: np.ndarray, task: Task) -> d
 # Data: one or several folds of a seed
 
 
-def _task_of(split: Any) -> Task:
-    """The split's task (a data module without tasks: classification)."""
-    return getattr(split, "task", None) or Task("classification", split.n_classes)
-
-
-def _standardised_split(dataset: Any, data_config: Any, seed: int) -> Any:
-    """A split with its standardisation statistics, for a data module whose ``Split`` does
-    not carry them: the unstandardised split of ``make_split``, standardised here with the
-    training part's mean and standard deviation exactly as ``make_split`` does."""
-    raw = data_module.make_split(dataset, replace(data_config, standardize=False), seed)
-    mean = raw.x_train.mean(axis=0)
-    std = raw.x_train.std(axis=0)
-    std = np.where(std > 1e-8, std, 1.0)
-    if not data_config.standardize:
-        mean, std = np.zeros_like(mean), np.ones_like(std)
-    return SimpleNamespace(
-        x_train=(raw.x_train - mean) / std, y_train=raw.y_train,
-        x_val=(raw.x_val - mean) / std, y_val=raw.y_val,
-        x_test=(raw.x_test - mean) / std, y_test=raw.y_test,
-        n_classes=raw.n_classes, task=Task("classification", raw.n_classes),
-        feature_mean=mean, feature_std=std, fold=0)
-
-
-def load_folds(config: StudyConfig, seed: int) -> tuple[Any, list[Any]]:
+def load_folds(config: StudyConfig, seed: int) -> tuple[Dataset, list[Split]]:
     """The data set and the splits of ``seed``: several for k-fold data, one otherwise.
 
     Each split carries ``task``, ``feature_mean``, ``feature_std`` and ``fold`` (see
     :class:`holonomic.study.data.Split`).
     """
     dataset = load_dataset(config)
-    make_splits = getattr(data_module, "make_splits", None)
-    if make_splits is not None:
-        splits = list(make_splits(dataset, config.data, seed))
-    else:
-        splits = [_standardised_split(dataset, config.data, seed)]
-    return dataset, splits
+    return dataset, make_splits(dataset, config.data, seed)
 
 
 def study_task(config: StudyConfig) -> Task:
     """The study's task as far as its data say before any split (no target statistics):
     for checking ``study.selection`` at the start of a study."""
     dataset = load_dataset(config)
-    name = getattr(dataset, "task", "classification")
+    name = dataset.task
     return Task(name, dataset.n_classes if name == "classification" else 0)
 
 
@@ -272,7 +237,7 @@ def _tensors(split: Split, dtype: torch.dtype, task: Task | None = None,
              ) -> dict[str, tuple[torch.Tensor, torch.Tensor]]:
     """Inputs and training targets per part: features in ``dtype``; labels (long) or
     standardised regression targets in ``dtype`` (``Task.target_tensor``)."""
-    task = _task_of(split) if task is None else task
+    task = split.task if task is None else task
 
     def pair(x: np.ndarray, y: np.ndarray) -> tuple[torch.Tensor, torch.Tensor]:
         target = task.target_tensor(y)
@@ -324,7 +289,7 @@ class _FoldRun:
 
     fold: int
     task: Task
-    split: Any
+    split: Split
     model: nn.Module
     setup: ArmSetup
     data: dict
@@ -341,12 +306,12 @@ def _planned_steps(config: StudyConfig, n_train: int) -> int:
     return config.budget.epochs * math.ceil(n_train / config.budget.batch_size)
 
 
-def _train_fold(config: StudyConfig, spec: RunSpec, split: Any, fold: int,
+def _train_fold(config: StudyConfig, spec: RunSpec, split: Split, fold: int,
                 hooks: list[StepHook], where: str = "") -> _FoldRun:
     """Train one model on one split (the whole run for hold-out data); ``where`` prefixes
     failure messages (``"fold j "`` for k-fold data)."""
     dtype = _DTYPES[config.budget.dtype]
-    task = _task_of(split)
+    task = split.task
     data = _tensors(split, dtype, task)
     targets = _targets(split)
     x_train, y_train = data["train"]
@@ -458,7 +423,7 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
     from holonomic.study import trained
 
     dataset, splits = load_folds(config, spec.seed)
-    task = _task_of(splits[0])
+    task = splits[0].task
     selection_metric(config, task)  # an impossible selection fails before any training
     k = len(splits)
     ensemble_config = config.arm(spec.arm).ensemble
@@ -520,8 +485,8 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         "classes": [str(c) for c in dataset.classes],
         "target_mean": float(task.target_mean),
         "target_std": float(task.target_std),
-        "data_fingerprint": str(getattr(dataset, "fingerprint", "")),
-        "feature_names": [str(n) for n in getattr(dataset, "feature_names", ())],
+        "data_fingerprint": dataset.fingerprint,
+        "feature_names": list(dataset.feature_names),
         "n_train": first.n_train,
         "grad_evals": sum(_planned_steps(config, len(s.y_train)) for s in splits),
         "steps_done": sum(r.steps_done for r in runs),
@@ -557,100 +522,14 @@ _METRIC_NAMES = (
 
 
 # ---------------------------------------------------------------------------------------
-# Running many runs
+# Running many runs: moved to holonomic.study.execution (these names still import from here)
+
+_MOVED_TO_EXECUTION = ("run_all", "check_compatible", "_execute", "_worker_init", "_context")
 
 
-def _execute(config: StudyConfig, spec: RunSpec, out_dir: str) -> str:
-    """Train one run and store its record (its audit file is in place before)."""
-    storage.write_record(out_dir, train_run(config, spec, out_dir=out_dir))
-    return spec.key
+def __getattr__(name: str):
+    if name in _MOVED_TO_EXECUTION:
+        from holonomic.study import execution
 
-
-def _worker_init() -> None:
-    torch.set_num_threads(1)
-    os.environ.setdefault("OMP_NUM_THREADS", "1")
-
-
-def _context():
-    """``fork`` where available (workers start at once: torch is already imported; the
-    parent has run no torch computation), else ``spawn``."""
-    import multiprocessing
-
-    if "fork" in multiprocessing.get_all_start_methods():
-        return get_context("fork")
-    return get_context("spawn")
-
-
-def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str | Path) -> None:
-    """Refuse to mix runs of a different study (data, model, budget or an arm's ensemble
-    settings changed)."""
-    expected = config.training_fingerprint()
-    for key, record in records.items():
-        spec = RunSpec(record.get("arm", "?"), 0, float(record.get("strength", "nan")),
-                       record.get("seed", -1))
-        if spec.key != key:
-            raise StudyConfigError(f"study config: {str(out_dir)!r} holds a file {key!r} whose "
-                                   f"record is for run {spec.key!r}; delete it")
-        if record.get("fingerprint") != expected:
-            raise StudyConfigError(
-                f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "
-                "data, model or budget settings; use a new --out directory or delete "
-                f"{str(storage.runs_dir(out_dir))!r}")
-        wanted = config.ensemble_settings(spec.arm)
-        if record.get("ensemble_settings") != wanted:
-            raise StudyConfigError(
-                f"study config: {str(out_dir)!r} holds run {key!r} made with ensemble settings "
-                f"{record.get('ensemble_settings')}, the study asks for {wanted} "
-                f"([arms.{spec.arm}.ensemble]); use a new --out directory or delete that arm's "
-                f"runs ({spec.arm}-*.json) from {str(storage.runs_dir(out_dir))!r}")
-
-
-def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
-            progress: bool = True, specs: Sequence[RunSpec] | None = None,
-            execute: Callable[[StudyConfig, RunSpec, str], str] = _execute) -> dict[str, dict]:
-    """Run every run not yet stored under ``out_dir/runs`` and return all records.
-
-    Finished runs are skipped, so an interrupted study resumes where it stopped. With
-    ``workers > 1`` runs go to a pool of spawned processes (torch single-threaded in each).
-    A progress bar (tqdm, to stderr) shows the count and an ETA over the whole study.
-    """
-    if workers < 1:
-        raise ValueError(f"workers must be >= 1, got {workers}")
-    out_dir = str(out_dir)
-    storage.runs_dir(out_dir).mkdir(parents=True, exist_ok=True)
-    storage.audits_dir(out_dir).mkdir(parents=True, exist_ok=True)
-    storage.remove_stale_temporaries(out_dir)
-    specs = plan_runs(config) if specs is None else list(specs)
-    keys = [s.key for s in specs]
-    done = storage.read_records(out_dir, keys)
-    check_compatible(config, done, out_dir)
-    pending = [s for s in specs if s.key not in done]
-    dataset = load_dataset(config)  # fail early on data errors, in this process
-    check_layer_selections(config, dataset.x.shape[1], dataset.n_classes or 1)  # and layers
-
-    from tqdm.auto import tqdm
-
-    bar = tqdm(total=len(specs), initial=len(specs) - len(pending), disable=not progress,
-               desc=f"study {config.name}", unit="run", dynamic_ncols=True)
-    try:
-        if workers == 1 or len(pending) <= 1:
-            for spec in pending:
-                execute(config, spec, out_dir)
-                bar.update(1)
-        else:
-            with ProcessPoolExecutor(max_workers=workers, mp_context=_context(),
-                                     initializer=_worker_init) as pool:
-                futures = {pool.submit(execute, config, spec, out_dir) for spec in pending}
-                try:
-                    while futures:
-                        finished, futures = wait(futures, return_when=FIRST_COMPLETED)
-                        for future in finished:
-                            future.result()
-                            bar.update(1)
-                except BaseException:
-                    for future in futures:
-                        future.cancel()
-                    raise
-    finally:
-        bar.close()
-    return storage.read_records(out_dir, keys)
+        return getattr(execution, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

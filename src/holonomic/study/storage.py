@@ -6,6 +6,7 @@ Layout of ``--out DIR``::
     DIR/runs/<arm>-<strength>-s<seed>.json   one finished run each (written atomically)
     DIR/audits/<arm>-<strength>-s<seed>.jsonl  that run's audit (renamed into place)
     DIR/results.csv, summary.json, report.md, *.png   (unsharded runs and --report-only)
+    DIR/invalid/<time>/runs/..., audits/...  run files set aside by --rerun-invalid
 
 A run's file name depends only on its arm, strength and seed, so processes that split the
 run list between them (shards, workers) never write the same file, and merging is a
@@ -13,10 +14,17 @@ directory listing. Every file is written to a hidden temporary file in the same 
 and then renamed with :func:`os.replace`, so an interrupted study leaves either the old file
 or the new one, never half of one; leftover temporaries (``.*.tmp``) are ignored on reading
 and removed by the next run.
+
+Run records are checked when read (:func:`validate_record`): a damaged or foreign file is an
+:class:`InvalidRunRecord` naming the file; :func:`move_aside` sets such files aside (never
+deletes them) so that their runs are redone. A write that fails for lack of space or
+permission is a :class:`StudyOutputError` naming the file and what to do.
 """
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import json
 import math
 import os
@@ -24,16 +32,132 @@ import re
 import socket
 import time
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Iterable, Iterator
 
 from holonomic.study.config import StudyConfigError
 
-__all__ = ["atomic_write_text", "audit_path", "read_records", "remove_stale_temporaries",
+__all__ = ["InvalidRunRecord", "RUN_STATUSES", "StudyOutputError", "atomic_write_text",
+           "audit_path", "check_output_dir", "make_output_dir", "move_aside", "output_errors",
+           "read_records", "remove_stale_temporaries", "run_key", "validate_record",
            "write_record", "write_study_record"]
 
 RUNS_DIR = "runs"
 AUDITS_DIR = "audits"
+INVALID_DIR = "invalid"
 STUDY_RECORD = "study.json"
+#: Valid values of a run record's ``status``.
+RUN_STATUSES = ("ok", "failed", "diverged")
+#: Keys every run record has (see validate_record for their types).
+REQUIRED_RECORD_KEYS = ("key", "arm", "strength", "seed", "status", "metrics", "fingerprint")
+#: Command-line flag that sets invalid run files aside and redoes those runs.
+RERUN_INVALID_FLAG = "--rerun-invalid"
+
+
+def run_key(arm: str, strength: float, seed: int) -> str:
+    """File-name key of a run, unique per (arm, strength, seed), e.g. ``fixed_norm-0.5-s3``."""
+    return f"{arm}-{float(strength)!r}-s{seed}"
+
+
+# ---------------------------------------------------------------------------------------
+# Errors while writing
+
+
+class StudyOutputError(StudyConfigError):
+    """A file of the study directory could not be written (disk full, no permission, a
+    path that is a file ...); the message names the file and what to do.
+
+    Attributes:
+        path: the file or directory that could not be written (a string).
+        errno: the operating system's error number (``errno.ENOSPC`` for a full disk), or None.
+    """
+
+    def __init__(self, message: str, path: str = "", errno: int | None = None) -> None:
+        super().__init__(message)
+        self.path = path
+        self.errno = errno
+
+    def __reduce__(self):  # keeps path and errno when raised in a worker process
+        return (type(self), (str(self), self.path, self.errno))
+
+
+#: Error numbers of a full disk or exceeded quota.
+_NO_SPACE = {errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC), errno.EFBIG}
+#: Error numbers of a place the study may not or cannot write to.
+_NOT_WRITABLE = {errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOTDIR, errno.EISDIR}
+
+
+def output_error(exc: OSError, path: str | Path | None = None,
+                 default: str | Path | None = None) -> StudyOutputError | None:
+    """The :class:`StudyOutputError` for an ``OSError`` raised while writing ``path`` (else
+    the file the error names, else ``default``), or None for errors that are not about the
+    place written to (those propagate unchanged)."""
+    where = path if path is not None else (exc.filename or default)
+    where = "" if where is None else str(where)
+    named = repr(where) if where else "a file of the study directory"
+    reason = exc.strerror or str(exc)
+    if exc.errno in _NO_SPACE:
+        return StudyOutputError(
+            f"no space left while writing {named} ({reason}). Free disk space (or raise the "
+            "quota) where the study writes, then rerun the same command: finished runs are "
+            "kept and only the missing ones are trained", where, exc.errno)
+    if exc.errno in _NOT_WRITABLE:
+        return StudyOutputError(
+            f"cannot write {named} ({reason}); give an --out directory you can write to",
+            where, exc.errno)
+    return None
+
+
+@contextlib.contextmanager
+def output_errors(path: str | Path | None = None,
+                  default: str | Path | None = None) -> Iterator[None]:
+    """Turn a full disk or an unwritable place into a :class:`StudyOutputError` naming
+    ``path`` (else the file the error names, else ``default``); other errors pass through."""
+    try:
+        yield
+    except StudyOutputError:
+        raise
+    except OSError as exc:
+        error = output_error(exc, path, default)
+        if error is None:
+            raise
+        raise error from exc
+
+
+def check_output_dir(out_dir: str | Path) -> None:
+    """Refuse an ``--out`` that is a file or cannot be created or written; creates nothing.
+
+    Raises:
+        StudyOutputError: naming the path and what is wrong.
+    """
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise StudyOutputError(f"--out {str(out)!r} is a file, not a directory; give a "
+                               "directory (it is created if missing)", str(out))
+    existing = out
+    while not existing.exists():
+        if existing.parent == existing:
+            break
+        existing = existing.parent
+    if existing.exists() and not existing.is_dir():
+        raise StudyOutputError(f"--out {str(out)!r} cannot be created: {str(existing)!r} is a "
+                               "file, not a directory", str(out))
+    if existing.is_dir() and not os.access(existing, os.W_OK | os.X_OK):
+        what = "is" if existing == out else f"would be created in {str(existing)!r}, which is"
+        raise StudyOutputError(f"--out {str(out)!r} {what} not writable; give a directory you "
+                               "can write to", str(out), errno.EACCES)
+
+
+def make_output_dir(out_dir: str | Path) -> Path:
+    """Create ``out_dir`` (and its parents); a failure is a :class:`StudyOutputError`."""
+    out = Path(out_dir)
+    check_output_dir(out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise StudyOutputError(f"cannot create --out directory {str(out)!r}: "
+                               f"{exc.strerror or exc}; give a directory you can write to",
+                               str(out), exc.errno) from exc
+    return out
 
 
 _HOST = re.sub(r"[^A-Za-z0-9]", "-", socket.gethostname()) or "host"
@@ -61,27 +185,33 @@ def _write_synced(handle, text: str) -> None:
 
 
 def atomic_write_text(path: str | Path, text: str) -> None:
-    """Write ``text`` to ``path`` atomically (temporary file, fsync, ``os.replace``)."""
+    """Write ``text`` to ``path`` atomically (temporary file, fsync, ``os.replace``).
+
+    Raises:
+        StudyOutputError: the disk is full or ``path`` cannot be written (naming it); the
+            old file, if any, is left as it was and no temporary remains.
+    """
     path = Path(path)
     tmp = temporary_path(path)
     try:
-        _write_synced(open(tmp, "w", encoding="utf-8", newline=""), text)
-        os.replace(tmp, path)
+        with output_errors(path):
+            _write_synced(open(tmp, "w", encoding="utf-8", newline=""), text)
+            os.replace(tmp, path)
     finally:
-        if tmp.exists():
-            tmp.unlink()
+        tmp.unlink(missing_ok=True)
 
 
 def atomic_write_bytes_from(path: str | Path, writer) -> None:
-    """Call ``writer(temporary_path)`` and rename the result onto ``path`` (for plots)."""
+    """Call ``writer(temporary_path)`` and rename the result onto ``path`` (for plots and
+    weights). Errors as in :func:`atomic_write_text`."""
     path = Path(path)
     tmp = temporary_path(path, keep_suffix=True)
     try:
-        writer(tmp)
-        os.replace(tmp, path)
+        with output_errors(path):
+            writer(tmp)
+            os.replace(tmp, path)
     finally:
-        if tmp.exists():
-            tmp.unlink()
+        tmp.unlink(missing_ok=True)
 
 
 def _clean(value: Any) -> Any:
@@ -134,8 +264,109 @@ def write_record(out_dir: str | Path, record: dict[str, Any]) -> Path:
     return path
 
 
-def read_records(out_dir: str | Path, keys: Iterable[str] | None = None) -> dict[str, dict]:
-    """Finished runs under ``DIR/runs`` keyed by run key (temporaries are skipped)."""
+class InvalidRunRecord(StudyConfigError):
+    """A run file under ``DIR/runs`` that is not a valid run record (damaged, edited, or
+    written by something else). The message names the file, what is wrong, and the
+    ``--rerun-invalid`` flag that sets such files aside and redoes their runs.
+
+    Attributes:
+        path: the run file (a string).
+        key: the run key its name gives.
+        problem: what is wrong with it.
+    """
+
+    def __init__(self, path: str | Path, problem: str, key: str | None = None) -> None:
+        path = str(path)
+        self.path, self.problem = path, problem
+        self.key = Path(path).stem if key is None else key
+        super().__init__(
+            f"{path!r} is not a valid run record: {problem}. It may be damaged or written by "
+            f"something else. Add {RERUN_INVALID_FLAG} to the command to move it (with its "
+            f"audit and weights) aside into {INVALID_DIR}/ under the study directory and redo "
+            "that run, or restore the file")
+
+    def __reduce__(self):
+        return (type(self), (self.path, self.problem, self.key))
+
+
+def _is_number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def validate_record(record: Any, path: str | Path) -> dict[str, Any]:
+    """Check that ``record`` (read from ``path``, ``DIR/runs/<key>.json``) is a run record:
+    a JSON object with the keys of :data:`REQUIRED_RECORD_KEYS` of the right types, a
+    ``status`` in :data:`RUN_STATUSES`, a ``key`` equal to the file name and to the key of
+    its arm, strength and seed. Returns the record.
+
+    Raises:
+        InvalidRunRecord: naming the file and the first thing wrong.
+    """
+    def bad(problem: str) -> InvalidRunRecord:
+        return InvalidRunRecord(path, problem)
+
+    if not isinstance(record, dict):
+        raise bad(f"it holds a JSON {type(record).__name__}, not an object")
+    missing = [k for k in REQUIRED_RECORD_KEYS if k not in record]
+    if missing:
+        raise bad(f"it lacks the key(s) {', '.join(missing)}")
+    types = {"key": (str, "a string"), "arm": (str, "a string"),
+             "fingerprint": (str, "a string"), "metrics": (dict, "an object")}
+    for name, (kind, words) in types.items():
+        if not isinstance(record[name], kind):
+            raise bad(f"'{name}' must be {words}, got {record[name]!r:.60}")
+    if not _is_number(record["strength"]):
+        raise bad(f"'strength' must be a number, got {record['strength']!r:.60}")
+    if isinstance(record["seed"], bool) or not isinstance(record["seed"], int):
+        raise bad(f"'seed' must be an integer, got {record['seed']!r:.60}")
+    if record["status"] not in RUN_STATUSES:
+        raise bad(f"'status' must be one of {', '.join(RUN_STATUSES)}, got "
+                  f"{record['status']!r:.60}")
+    for name, value in record["metrics"].items():
+        if not (value is None or _is_number(value)):
+            raise bad(f"metric {name!r} must be a number, got {value!r:.60}")
+    for name in ("data_fingerprint", "message"):
+        if name in record and not isinstance(record[name], str):
+            raise bad(f"'{name}' must be a string, got {record[name]!r:.60}")
+    stem = Path(path).stem
+    if record["key"] != stem:
+        raise bad(f"its 'key' {record['key']!r} does not match its file name (key {stem!r})")
+    expected = run_key(record["arm"], record["strength"], record["seed"])
+    if record["key"] != expected:
+        raise bad(f"its 'key' {record['key']!r} does not match its arm, strength and seed "
+                  f"(key {expected!r})")
+    return record
+
+
+def read_record(path: str | Path) -> dict[str, Any]:
+    """Read and validate one run file (see :func:`validate_record`)."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except IsADirectoryError as exc:
+        raise InvalidRunRecord(path, "it is a directory, not a file") from exc
+    except UnicodeDecodeError as exc:
+        raise InvalidRunRecord(path, f"it is not UTF-8 text ({exc.reason} at byte "
+                                     f"{exc.start})") from exc
+    try:
+        record = loads(text)
+    except json.JSONDecodeError as exc:
+        raise InvalidRunRecord(path, f"it is not JSON ({exc.msg} at line {exc.lineno} column "
+                                     f"{exc.colno})") from exc
+    except RecursionError as exc:
+        raise InvalidRunRecord(path, "it is nested too deeply") from exc
+    return validate_record(record, path)
+
+
+def read_records(out_dir: str | Path, keys: Iterable[str] | None = None,
+                 invalid: list[InvalidRunRecord] | None = None) -> dict[str, dict]:
+    """Finished runs under ``DIR/runs`` keyed by run key (temporaries are skipped; with
+    ``keys``, only those runs are read). Every record is validated (:func:`read_record`).
+
+    Raises:
+        InvalidRunRecord: for the first invalid file, unless ``invalid`` is a list: then
+            each invalid file's error is appended to it and the file is left out.
+    """
     directory = runs_dir(out_dir)
     if not directory.is_dir():
         return {}
@@ -147,8 +378,49 @@ def read_records(out_dir: str | Path, keys: Iterable[str] | None = None) -> dict
         key = path.stem
         if wanted is not None and key not in wanted:
             continue
-        records[key] = loads(path.read_text(encoding="utf-8"))
+        try:
+            records[key] = read_record(path)
+        except InvalidRunRecord as exc:
+            if invalid is None:
+                raise
+            invalid.append(exc)
     return records
+
+
+def run_files(out_dir: str | Path, key: str) -> list[Path]:
+    """The files of run ``key`` that exist: its record, audit and weights (``runs/<key>.pt``)."""
+    candidates = (runs_dir(out_dir) / f"{key}.json", audit_path(out_dir, key),
+                  runs_dir(out_dir) / f"{key}.pt")
+    return [path for path in candidates if path.exists()]
+
+
+def move_aside(out_dir: str | Path, keys: Iterable[str]) -> list[tuple[Path, Path]]:
+    """Move the files of runs ``keys`` (record, audit, weights) into a new folder
+    ``DIR/invalid/<YYYYmmdd-HHMMSS>[-n]/`` (keeping ``runs/`` and ``audits/`` below it);
+    nothing is deleted. Returns ``(from, to)`` for each file moved (none: nothing created).
+    """
+    out = Path(out_dir)
+    files = [path for key in keys for path in run_files(out, key)]
+    if not files:
+        return []
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    with output_errors():
+        base = out / INVALID_DIR
+        base.mkdir(exist_ok=True)
+        for n in range(10_000):
+            target = base / (stamp if n == 0 else f"{stamp}-{n}")
+            try:
+                target.mkdir()
+                break
+            except FileExistsError:
+                continue
+        moved = []
+        for path in files:
+            destination = target / path.relative_to(out)
+            destination.parent.mkdir(parents=True, exist_ok=True)
+            os.replace(path, destination)
+            moved.append((path, destination))
+    return moved
 
 
 def _writer_alive(path: Path) -> bool:
@@ -265,7 +537,9 @@ def write_study_record(out_dir: str | Path, definition: dict[str, Any],
     if shards is None:
         atomic_write_text(path, dumps(record))
         return path
-    if _create_exclusive(path, dumps(record)):
+    with output_errors(path):
+        created = _create_exclusive(path, dumps(record))
+    if created:
         return path
     existing = _read_study_record(path)
     theirs = existing.get("definition", {})
