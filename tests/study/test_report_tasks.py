@@ -266,9 +266,9 @@ def test_training_rows_are_counted_never_all_the_rest(tmp_path):
     records = fabricate(config, n_train={0: 810, 1: 812})
     _, report = _report(config, records, tmp_path)
     assert "Training rows per run: 810 to 812" in report
-    for record in records.values():  # k-fold: per-fold sizes in the record's folds
-        record["folds"] = [{"n_train": 540, "metrics": {}}, {"n_train": 541, "metrics": {}},
-                           {"n_train": 541, "metrics": {}}]
+    for record in records.values():  # k-fold: per-fold sizes in the record's fold details
+        record["folds"] = [dict(record["metrics"]) for _ in range(3)]
+        record["fold_details"] = [{"fold": j, "n_train": 540 + (j > 0)} for j in range(3)]
         record["n_train"] = 540
     summary, report = _report(config, records, tmp_path)
     assert summary["data"]["n_train"] == [540, 541] and summary["data"]["folds"] == 3
@@ -349,3 +349,24 @@ def test_report_markdown_from_summary_alone(tmp_path):
     summary, report = _report(config, records, tmp_path)
     summary = storage.loads((tmp_path / "summary.json").read_text())
     assert report_markdown(config, summary, "invented records", []) == report
+
+
+def test_selection_metric_of_the_config_module_is_used(monkeypatch):
+    """The report asks ``holonomic.study.config.selection_metric(config, task)`` (the
+    study's own resolution of ``study.selection``) when it exists."""
+    from holonomic.study import config as config_module
+
+    asked = []
+
+    def chooser(config, task):
+        asked.append(task.name)
+        return "val_mae"
+
+    monkeypatch.setattr(config_module, "selection_metric", chooser, raising=False)
+    config = _config(selection=None)
+    records = fabricate(config, "regression")
+    for record in records.values():  # MAE prefers index 0, RMSE index 1
+        record["metrics"]["val_mae"] = 40.0 + record["setting_index"]
+        record["metrics"]["val_rmse"] = 60.0 - record["setting_index"]
+    assert study_metrics(config, records).selection == "val_mae" and asked
+    assert all(s.index == 0 for s in select_settings(config, records).values())

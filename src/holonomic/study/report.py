@@ -53,9 +53,9 @@ _SHORT = {"accuracy": "accuracy", "balanced_accuracy": "balanced accuracy",
 #: Feature names listed in the report before "and N more".
 FEATURES_SHOWN = 20
 #: Where the report sends a reader who wants to load a run's saved weights.
-WEIGHTS_HELP = ("load one with `torch.load(path, weights_only=True)`; how to rebuild the "
-                "model and predict with it is described in the `holonomic.study` "
-                "documentation (module docstrings)")
+WEIGHTS_HELP = ("each loads with `torch.load(path, weights_only=True)`; how to rebuild the "
+                "model and predict with it: see the `holonomic.study.trained` module "
+                "docstring")
 _PREFIXES = ("val_gap_", "gap_", "train_", "val_", "test_")
 
 
@@ -102,9 +102,9 @@ class StudyMetrics:
     """What a study's records hold and what the report does with it.
 
     Attributes:
-        task: the task rebuilt from the records (``n_classes`` is 2 for binary
-            classification, 3 standing for "more than two" otherwise; only the metric
-            names and directions are used).
+        task: the task rebuilt from the records (``n_classes`` from the record, or when
+            it has none 2 if it holds ROC AUC and 3 standing for "more than two"
+            otherwise; only the metric names and directions are used).
         metrics: per-split metric names found in the records, in the task's order; the
             first is the headline metric (accuracy, or RMSE for regression).
         selection: the selection metric, ``val_<metric>``.
@@ -166,13 +166,15 @@ def _first_record(config: StudyConfig, records: dict[str, dict]) -> dict:
 def _selection_metric(config: StudyConfig, task: Task) -> str:
     """``study.selection``, or the task's default when it is not set.
 
-    Uses ``holonomic.study.runner.selection_metric(config, task)`` when the runner has it;
-    otherwise ``config.selection``, defaulting to ``val_rmse`` (regression) or
-    ``val_accuracy`` (classification).
+    Uses ``selection_metric(config, task)`` of :mod:`holonomic.study.config` (or of the
+    runner) when there is one; otherwise ``config.selection``, defaulting to ``val_rmse``
+    (regression) or ``val_accuracy`` (classification).
     """
+    from holonomic.study import config as config_module
     from holonomic.study import runner
 
-    chooser = getattr(runner, "selection_metric", None)
+    chooser = (getattr(config_module, "selection_metric", None)
+               or getattr(runner, "selection_metric", None))
     if chooser is not None:
         return chooser(config, task)
     selection = getattr(config, "selection", None)
@@ -188,7 +190,8 @@ def study_metrics(config: StudyConfig, records: dict[str, dict]) -> StudyMetrics
     first = _first_record(config, records)
     names = tuple(first["metrics"])
     name = first.get("task", "classification")
-    n_classes = 0 if name == "regression" else (2 if "test_roc_auc" in names else 3)
+    n_classes = 0 if name == "regression" else int(
+        first.get("n_classes") or (2 if "test_roc_auc" in names else 3))
     task = Task(name, n_classes)
     metrics = tuple(m for m in task.metrics if f"test_{m}" in names)
     if not metrics:
@@ -389,9 +392,10 @@ def _n_train_values(records: dict[str, dict]) -> list[int]:
         value = record.get("n_train")
         sizes.update(int(v) for v in (value if isinstance(value, (list, tuple)) else [value])
                      if v is not None)
-        for fold in record.get("folds") or []:
-            if isinstance(fold, dict) and fold.get("n_train") is not None:
-                sizes.add(int(fold["n_train"]))
+        for key in ("fold_details", "folds"):
+            for fold in record.get(key) or []:
+                if isinstance(fold, dict) and fold.get("n_train") is not None:
+                    sizes.add(int(fold["n_train"]))
     return sorted(sizes)
 
 
@@ -410,6 +414,14 @@ def _scheme(config: StudyConfig) -> str:
             f"{d.val_fraction:g} of all rows, training {train}")
 
 
+def _weights_count(record: dict) -> int:
+    """Saved weight files of a run: ``weights_files`` (one per fold) or ``weights_file``."""
+    files = record.get("weights_files")
+    if files:
+        return len(files)
+    return 1 if record.get("weights_file") else 0
+
+
 def _data_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, Any]:
     first = _first_record(config, records)
     features = next((list(r["feature_names"]) for r in records.values()
@@ -422,7 +434,7 @@ def _data_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, An
         "feature_names": features,
         "fingerprints": fingerprints,
         "folds": max((len(r.get("folds") or []) for r in records.values()), default=0),
-        "weights_files": sum(1 for r in records.values() if r.get("weights_file")),
+        "weights_files": sum(_weights_count(r) for r in records.values()),
         "task": first.get("task", "classification"),
     }
 
@@ -843,8 +855,10 @@ def _file_lines(summary: dict[str, Any], plots: list[str]) -> list[str]:
              "run with its per-epoch history and audit summary; `audits/`: one audit per run; "
              "`study.json`: the study definition the runs were made with."]
     if summary["data"]["weights_files"]:
-        lines.append(f"- `runs/<run key>.pt`: the final weights of each run (record "
-                     f"`weights_file`); {WEIGHTS_HELP}.")
+        per_fold = (", `runs/<run key>.fold<j>.pt` per fold j with k-fold data"
+                    if summary["data"]["folds"] else "")
+        lines.append(f"- `runs/<run key>.pt`{per_fold}: the final weights of each finished "
+                     f"run (record `weights_file`); {WEIGHTS_HELP}.")
     for p in plots:
         name, _, text = p.partition(": ")
         lines.append(f"- `{name}`: {text}")
