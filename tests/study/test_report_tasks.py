@@ -143,6 +143,7 @@ def test_regression_summary_and_report(tmp_path):
     records = fabricate(config, "regression", effects={"fixed_norm": 0.05})
     summary, report = _report(config, records, tmp_path)
     assert summary["task"]["headline"] == "rmse" and summary["task"]["selection"] == "val_rmse"
+    assert summary["protocol"]["selection_metric"] == "val_rmse"
     assert summary["task"]["compared"] == ["test_rmse", "test_r2", "gap_rmse", "gap_loss"]
     chosen = summary["arms"]["fixed_norm"]["chosen"]
     assert {"train_rmse", "test_rmse", "test_r2", "test_mae", "gap_loss"} <= set(chosen)

@@ -536,6 +536,7 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
             "selection": f"mean {metrics.selection} over seeds, per arm ("
                          f"{'larger' if larger else 'smaller'} wins; ties go to the earlier "
                          "grid point)",
+            "selection_metric": metrics.selection,
             "test_metrics": "computed for every run and stored in results.csv; never used for "
                             "selection; reported only for the chosen settings",
             "paired_by": "seed (same split, initial weights, minibatch order and noise)",
