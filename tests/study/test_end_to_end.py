@@ -13,14 +13,15 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from scipy import stats
 
 from holonomic.cli import main
 from holonomic.study import StudyConfigError, parse_config, run_study
 from holonomic.study.runner import plan_runs, run_all
 from tests.study.conftest import counting_execute, interrupt_after
 
-OUTPUTS = ("results.csv", "summary.json", "report.md", "gap_vs_strength.png",
-           "learning_curves.png", "weights.png")
+OUTPUTS = ("results.csv", "summary.json", "report.md", "selection_vs_strength.png",
+           "gap_vs_strength.png", "learning_curves.png", "weights.png")
 
 
 def _rows(path: Path) -> list[dict]:
@@ -63,7 +64,21 @@ def test_cli_study_outputs_are_complete_and_consistent(tmp_path, tiny_config, ti
             comp = summary["comparisons_vs_weight_decay"][arm.name]["gap_accuracy"]
             assert comp["mean_difference"] == pytest.approx(diff, abs=1e-12)
             assert f"{diff:.4f}" in report
+            # the verdict at the top, recomputed from the CSV (scipy.stats.t interval)
+            base = np.array([float(r["test_accuracy"]) for r in rows
+                             if r["arm"] == "weight_decay" and r["chosen"] == "true"])
+            d = np.array([float(r["test_accuracy"]) for r in picked]) - base
+            low = high = d.mean()
+            if d.std(ddof=1) > 0:
+                low, high = stats.t.interval(0.95, len(d) - 1, loc=d.mean(),
+                                             scale=d.std(ddof=1) / np.sqrt(len(d)))
+            reading = ("cannot tell apart" if low <= 0 <= high else
+                       "better" if d.mean() > 0 else "worse")
+            verdict = (f"- {arm.name} vs weight_decay, test accuracy: {reading} "
+                       f"({d.mean():+.3f} [{low:+.3f}, {high:+.3f}], 2 seeds)")
+            assert verdict in report.split("## Set-up")[0]
     assert "never used to choose" in report and "0.5" in report  # Wilcoxon floor, 2 seeds
+    assert "Training rows per run: 64." in report and "all the rest" not in report
 
 
 @pytest.mark.slow

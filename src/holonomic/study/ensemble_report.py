@@ -1,7 +1,10 @@
 """The report's ensemble section: single network against ensemble, and mixing diagnostics.
 
 Reads the ensemble phases stored in run records (:mod:`holonomic.study.ensemble`) at each
-arm's chosen setting; see that module for what the numbers do and do not show.
+arm's chosen setting; see that module for what the numbers do and do not show. Generic over
+the task: the metric names come from the records (``record["ensemble"]["single"]["test"]``)
+and the traced observables from ``record["ensemble"]["traces"]``; whether larger is better
+comes from :data:`METRIC_DIRECTIONS`.
 """
 
 from __future__ import annotations
@@ -13,10 +16,37 @@ import numpy as np
 
 from holonomic.sampling import mixing_diagnostics, rank_normalized_split_rhat
 from holonomic.study.config import StudyConfig
-from holonomic.study.ensemble import ENSEMBLE_METRICS, TRACED
 from holonomic.study.stats import paired_comparison
 
-__all__ = ["ensemble_lines", "ensemble_summary"]
+__all__ = ["METRIC_DIRECTIONS", "ensemble_lines", "ensemble_metric_names", "ensemble_summary"]
+
+#: Whether a larger value of an ensemble metric is better (None: neither, e.g. the
+#: predictive entropy or spread, which are descriptions, not scores). Names not listed
+#: are treated as neither.
+METRIC_DIRECTIONS: dict[str, bool | None] = {
+    "accuracy": True, "balanced_accuracy": True, "macro_f1": True, "roc_auc": True,
+    "rmse": False, "r2": True, "mae": False, "nll": False, "ece": False, "loss": False,
+    "entropy": None, "sd": None, "mean_sd": None, "predictive_sd": None,
+}
+
+
+def _phases(records: dict[str, dict]) -> list[dict]:
+    return [r["ensemble"] for r in records.values() if r.get("ensemble")]
+
+
+def ensemble_metric_names(records: dict[str, dict]) -> tuple[str, ...]:
+    """Metric names of the ensemble phases in ``records`` (the keys of
+    ``record["ensemble"]["single"]["test"]``) in the order of :data:`METRIC_DIRECTIONS`,
+    then any other name sorted."""
+    seen: set[str] = set()
+    for phase in _phases(records):
+        for who in ("single", "ensemble"):
+            seen.update(phase[who]["test"])
+    return tuple(_in_order(seen))
+
+
+def _task_of(records: dict[str, dict]) -> str:
+    return next((r.get("task", "classification") for r in records.values()), "classification")
 
 def _diagnostics(traces: dict[str, np.ndarray]) -> dict[str, Any]:
     """Mixing diagnostics per observable, seeds as chains, plus single-chain split R-hat."""
@@ -49,6 +79,7 @@ def ensemble_summary(config: StudyConfig, records: dict[str, dict],
     diagnostics of the traced observables over the seeds' chains."""
     from holonomic.study.runner import RunSpec
 
+    task = _task_of(records)
     out: dict[str, Any] = {}
     for arm in config.arms:
         sel = chosen[arm.name]
@@ -58,6 +89,7 @@ def ensemble_summary(config: StudyConfig, records: dict[str, dict],
                 for s in config.seeds]
         ok = [(seed, r) for seed, r in zip(config.seeds, runs) if r["status"] == "ok"]
         entry: dict[str, Any] = {
+            "task": task,
             "strength": sel.strength,
             "settings": runs[0]["settings"],
             "sampler": runs[0]["sampler"],
@@ -68,14 +100,20 @@ def ensemble_summary(config: StudyConfig, records: dict[str, dict],
             "mixing": {},
         }
         if len(ok) >= 2:
-            for metric in ENSEMBLE_METRICS:
-                single = np.array([r["single"]["test"][metric] for _, r in ok])
-                ensemble = np.array([r["ensemble"]["test"][metric] for _, r in ok])
+            names = ensemble_metric_names({str(s): {"ensemble": r} for s, r in ok})
+            for metric in names:
+                single = np.array([r["single"]["test"].get(metric, math.nan) for _, r in ok])
+                ensemble = np.array([r["ensemble"]["test"].get(metric, math.nan)
+                                     for _, r in ok])
                 comp = paired_comparison(ensemble, single)
                 entry["metrics"][metric] = {"single_mean": float(single.mean()),
                                             "ensemble_mean": float(ensemble.mean()),
+                                            "larger_is_better": METRIC_DIRECTIONS.get(metric),
                                             "difference": comp.to_dict()}
-            traces = {name: np.array([r["traces"][name] for _, r in ok]) for name in TRACED}
+            traced = [name for name in ok[0][1]["traces"]
+                      if all(len(r["traces"].get(name, [])) == len(ok[0][1]["traces"][name])
+                             for _, r in ok)]
+            traces = {name: np.array([r["traces"][name] for _, r in ok]) for name in traced}
             entry["mixing"] = _diagnostics(traces)
         out[arm.name] = entry
     return out
@@ -85,17 +123,23 @@ def _num(x: float, digits: int = 4) -> str:
     return "n/a" if x is None or not math.isfinite(x) else f"{x:.{digits}f}"
 
 
-_LOWER_BETTER = {"nll": True, "ece": True, "accuracy": False, "entropy": None}
+def _in_order(names) -> list[str]:
+    """Metric names in the order of :data:`METRIC_DIRECTIONS`, others sorted after them."""
+    known = [m for m in METRIC_DIRECTIONS if m in names]
+    return known + sorted(set(names).difference(known))
 
 
 def _reading(metric: str, comp: dict) -> str:
+    if not (math.isfinite(comp["mean_difference"]) and math.isfinite(comp["ci_low"])
+            and math.isfinite(comp["ci_high"])):
+        return "no reading (non-finite values)"
     if comp["includes_zero"]:
         return "cannot tell apart (interval includes 0)"
     higher = comp["mean_difference"] > 0
-    better = _LOWER_BETTER[metric]
-    if better is None:
+    larger_better = METRIC_DIRECTIONS.get(metric)
+    if larger_better is None:
         return f"ensemble {'higher' if higher else 'lower'} (neither is better by itself)"
-    good = higher != better
+    good = higher == larger_better
     return f"ensemble {'higher' if higher else 'lower'} ({'better' if good else 'worse'})"
 
 
@@ -103,15 +147,23 @@ def ensemble_lines(summary: dict[str, Any]) -> list[str]:
     """The report's ensemble section (empty when no arm has an ensemble)."""
     if not summary:
         return []
+    regression = any(e.get("task") == "regression" for e in summary.values())
+    loss = ("training loss (half the squared error of standardised targets: a Gaussian "
+            "likelihood)" if regression else "training cross-entropy")
+    average = ("averages the samples' predictions (the predictive mean; the spread of the "
+               "samples' predictions adds to the predictive variance)" if regression else
+               "averages the predictive probabilities of the samples")
     lines = ["", "## Ensemble phase (sampling after training)", "",
              "For the arms below every run continued after training as a sampler from its "
-             "trained weights, at temperature T on the tempered posterior of N x mean "
-             "training cross-entropy (+ N x the arm's weight decay as a Gaussian prior; the "
+             f"trained weights, at temperature T on the tempered posterior of N x mean {loss} "
+             "(+ N x the arm's weight decay as a Gaussian prior; the "
              "constraint set itself for constraint arms), N = training-set size, mini-batches "
-             "as in training. The ensemble averages the predictive probabilities of the "
-             "samples; the single network is the trained network the sampler started from. "
+             f"as in training. The ensemble {average}; the single network is the trained "
+             "network the sampler started from. "
              "Test split, chosen setting, mean over seeds; difference = ensemble - single, "
-             "paired by seed, with a 95% t interval (scipy.stats.t)."]
+             "paired by seed, with a 95% t interval (scipy.stats.t). Lower is better for "
+             "NLL, ECE, RMSE and MAE, higher for accuracy-type metrics and R^2; entropy and "
+             "predictive spread describe the predictions and are neither."]
     for name, entry in summary.items():
         s = entry["settings"]
         lines += ["", f"### {name} (strength {entry['strength']:g})", "",
@@ -128,7 +180,8 @@ def ensemble_lines(summary: dict[str, Any]) -> list[str]:
             continue
         lines += ["", "| metric | single | ensemble | ensemble - single [95% CI] | reading |",
                   "|---|---|---|---|---|"]
-        for metric, m in entry["metrics"].items():
+        for metric in _in_order(entry["metrics"]):
+            m = entry["metrics"][metric]
             d = m["difference"]
             lines.append(f"| {metric} | {_num(m['single_mean'])} | {_num(m['ensemble_mean'])} "
                          f"| {_num(d['mean_difference'])} [{_num(d['ci_low'])}, "
