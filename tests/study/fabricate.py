@@ -79,7 +79,7 @@ def fabricate(config, task: str = "classification", binary: bool = False,
         record = {
             "key": spec.key, "arm": spec.arm, "setting_index": spec.index,
             "strength": spec.strength, "seed": spec.seed, "status": "ok", "message": "",
-            "task": task, "n_train": size, "grad_evals": 6, "steps_done": 6,
+            "task": task, "n_classes": t.n_classes, "n_train": size, "grad_evals": 6, "steps_done": 6,
             "layers": ([] if spec.arm == "none" else ["(all parameters)"]
                        if spec.arm == "weight_decay" else ["0.weight", "2.weight"]),
             "metrics": metrics, "history": history, "hooks": {}, "ensemble": None,

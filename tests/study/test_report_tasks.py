@@ -98,8 +98,9 @@ def test_unknown_selection_metric_is_a_clear_error():
 
     config = _config(selection="val_roc_auc")
     records = fabricate(config)  # three classes: no ROC AUC
-    with pytest.raises(StudyConfigError, match="'study.selection' = 'val_roc_auc'.*allowed: "
-                                               "val_accuracy, val_balanced_accuracy"):
+    with pytest.raises(StudyConfigError, match="'study.selection' = 'val_roc_auc'.*allowed "
+                                               "for this task: val_accuracy, "
+                                               "val_balanced_accuracy"):
         study_metrics(config, records)
 
 
@@ -304,17 +305,22 @@ def test_orthonormal_note_and_its_arithmetic(tmp_path):
 
 # --- what the report states ---------------------------------------------------------
 
-def test_report_states_scheme_features_layers_task_and_weights(tmp_path, monkeypatch):
-    from holonomic.study import data
+def test_report_states_scheme_features_layers_task_and_weights(tmp_path):
+    from holonomic.study.data import describe_scheme, load_dataset, make_splits
 
-    monkeypatch.setattr(data, "describe_scheme",
-                        lambda d: "5-fold stratified, repeated once per seed.",
-                        raising=False)
     config = _config(seeds=2, selection="val_macro_f1")
     names = tuple(f"sensor_{i}" for i in range(25))
     records = fabricate(config, feature_names=names, weights=True)
     summary, report = _report(config, records, tmp_path)
-    assert "- Split: 5-fold stratified, repeated once per seed. Features" in report
+    dataset = load_dataset(config)
+    (split,) = make_splits(dataset, config.data, config.seeds[0])
+    scheme = describe_scheme(config.data, dataset, config.seeds[0])
+    assert scheme.startswith("hold-out per seed, stratified by class: test 0.35 and "
+                             "validation 0.25 of all rows; training: 64 rows subsampled")
+    sizes = (f"training 64, validation {len(split.y_val)}, test {len(split.y_test)} rows "
+             f"(seed {config.seeds[0]})")
+    assert scheme.endswith(sizes + ".") and summary["data"]["scheme"] == scheme[:-1]
+    assert f"- Split: {scheme} Features" in report
     assert ("Feature columns: 25 used: " + ", ".join(f"`sensor_{i}`" for i in range(20))
             + " and 5 more") in report
     assert "`sensor_20`" not in report
@@ -352,22 +358,20 @@ def test_report_markdown_from_summary_alone(tmp_path):
     assert report_markdown(config, summary, "invented records", []) == report
 
 
-def test_selection_metric_of_the_config_module_is_used(monkeypatch):
-    """The report asks ``holonomic.study.config.selection_metric(config, task)`` (the
-    study's own resolution of ``study.selection``) when it exists."""
-    from holonomic.study import config as config_module
+def test_selection_metric_is_the_configs_resolution():
+    """The report selects by ``holonomic.study.config.selection_metric(config, task)`` (the
+    study's own resolution of ``study.selection``): the task's default, or the metric set."""
+    from holonomic.study.config import selection_metric
+    from holonomic.study.tasks import Task
 
-    asked = []
-
-    def chooser(config, task):
-        asked.append(task.name)
-        return "val_mae"
-
-    monkeypatch.setattr(config_module, "selection_metric", chooser, raising=False)
-    config = _config(selection=None)
-    records = fabricate(config, "regression")
+    records = fabricate(_config(selection=None), "regression")
     for record in records.values():  # MAE prefers index 0, RMSE index 1
         record["metrics"]["val_mae"] = 40.0 + record["setting_index"]
         record["metrics"]["val_rmse"] = 60.0 - record["setting_index"]
-    assert study_metrics(config, records).selection == "val_mae" and asked
-    assert all(s.index == 0 for s in select_settings(config, records).values())
+    for selection, index in ((None, 1), ("val_mae", 0)):
+        config = _config(selection=selection)
+        expected = selection_metric(config, Task("regression"))
+        assert study_metrics(config, records).selection == expected == (selection or
+                                                                        "val_rmse")
+        chosen = select_settings(config, records)
+        assert all(chosen[a.name].index == index for a in config.arms if len(a.grid) > 1)

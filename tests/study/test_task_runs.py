@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from types import SimpleNamespace
 
 import numpy as np
 import pytest
@@ -25,19 +24,12 @@ from holonomic.study import (
     predict,
     run_study,
 )
-from holonomic.study import data as data_module
 from holonomic.study import storage
-from holonomic.study import runner
-from holonomic.study.config import DataConfig, EnsembleConfig, selection_metric
+from holonomic.study.config import EnsembleConfig, selection_metric
 from holonomic.study.ensemble import ensemble_metrics, regression_predictive
 from holonomic.study.report import select_settings
 from holonomic.study.runner import RunSpec, load_folds, plan_runs, record_metric_names, train_run
-from holonomic.study.tasks import Task, task_for
-
-#: Whether the data module knows tasks and folds (``data.task``, ``make_splits``); without,
-#: the regression data are split here the way the data contract describes.
-DATA_HAS_TASKS = ("task" in {f.name for f in dataclasses.fields(DataConfig)}
-                  and hasattr(data_module, "make_splits"))
+from holonomic.study.tasks import Task
 
 
 def _stored_run(config, spec, out) -> dict:
@@ -57,15 +49,13 @@ def _write_csv(path, x: np.ndarray, y: np.ndarray, names) -> None:
 def _doc(source: str, task: str, **budget) -> dict:
     doc = {
         "study": {"name": "t", "seeds": [0, 1]},
-        "data": {"source": source, "target": "target", "val_fraction": 0.2,
+        "data": {"source": source, "target": "target", "task": task, "val_fraction": 0.2,
                  "test_fraction": 0.3},
         "model": {"widths": [32]},
         "budget": {"epochs": 40, "batch_size": 32, "lr": 0.01, "momentum": 0.9,
                    "dtype": "float64", **budget},
         "arms": {"none": {}, "weight_decay": {"grid": [1e-3, 1e-2]}},
     }
-    if DATA_HAS_TASKS:
-        doc["data"]["task"] = task
     return doc
 
 
@@ -74,26 +64,8 @@ def _raw(split, part: str) -> np.ndarray:
     return getattr(split, f"x_{part}") * split.feature_std + split.feature_mean
 
 
-def _contract_split(x: np.ndarray, y: np.ndarray, data, seed: int):
-    """A regression split as the data contract describes it (random, not stratified;
-    features and targets standardised with the training part's statistics)."""
-    from sklearn.model_selection import train_test_split
-
-    rest, test = train_test_split(np.arange(len(y)), test_size=data.test_fraction,
-                                  random_state=seed)
-    train, val = train_test_split(rest, test_size=data.val_fraction / (1 - data.test_fraction),
-                                  random_state=seed + 1)
-    train, val, test = np.sort(train), np.sort(val), np.sort(test)
-    mean, std = x[train].mean(axis=0), x[train].std(axis=0)
-    task = task_for("regression", 0, float(y[train].mean()), float(y[train].std()))
-    return SimpleNamespace(
-        x_train=(x[train] - mean) / std, y_train=y[train], x_val=(x[val] - mean) / std,
-        y_val=y[val], x_test=(x[test] - mean) / std, y_test=y[test], n_classes=0,
-        task=task, feature_mean=mean, feature_std=std, fold=0)
-
-
 @pytest.fixture
-def diabetes(tmp_path, monkeypatch):
+def diabetes(tmp_path):
     """A regression study on scikit-learn's bundled diabetes data, as a CSV file."""
     from sklearn.datasets import load_diabetes
 
@@ -101,13 +73,7 @@ def diabetes(tmp_path, monkeypatch):
     _write_csv(tmp_path / "diabetes.csv", bunch.data, bunch.target, bunch.feature_names)
 
     def make(**budget):
-        config = parse_config(_doc("diabetes.csv", "regression", **budget), base_dir=tmp_path)
-        if not DATA_HAS_TASKS:
-            dataset = SimpleNamespace(classes=(), feature_names=tuple(bunch.feature_names),
-                                      fingerprint="", n_classes=0, task="regression")
-            monkeypatch.setattr(runner, "load_folds", lambda cfg, seed: (dataset, [
-                _contract_split(bunch.data, bunch.target.astype(np.float64), cfg.data, seed)]))
-        return config
+        return parse_config(_doc("diabetes.csv", "regression", **budget), base_dir=tmp_path)
 
     return make
 
@@ -129,7 +95,7 @@ def test_diabetes_regression_matches_sklearn_metrics_and_a_ridge_band(diabetes, 
     assert history["epoch"] == list(range(1, config.budget.epochs + 1))
     assert history["test_rmse"][-1] == pytest.approx(record["metrics"]["test_rmse"], abs=1e-12)
 
-    _, (split,) = runner.load_folds(config, spec.seed)
+    _, (split,) = load_folds(config, spec.seed)
     model, info = load_trained(out, spec.key)
     assert info["target_mean"] == record["target_mean"] == pytest.approx(split.y_train.mean())
     predicted = predict(model, info, _raw(split, "test"))
@@ -173,7 +139,7 @@ def test_regression_ensemble_has_predictive_mean_and_variance(diabetes, tmp_path
     # the single network is the trained one, whose weights were saved before sampling
     assert phase["single"]["test"]["rmse"] == pytest.approx(record["metrics"]["test_rmse"],
                                                            abs=1e-12)
-    _, (split,) = runner.load_folds(config, spec.seed)
+    _, (split,) = load_folds(config, spec.seed)
     model, info = load_trained(out, spec.key)
     mu = predict(model, info, _raw(split, "test"))
     # Reference library: scipy.stats.norm; the single network's predictive variance is the
@@ -270,19 +236,16 @@ def test_selection_follows_the_metric_direction(tiny_doc, selection, best):
         assert chosen[arm.name].index == int(best(means))
 
 
-def _three_folds(monkeypatch):
-    """Pretend the data module splits each seed into 3 folds (three distinct splits)."""
-    def make_splits(dataset, data, seed):
-        return [SimpleNamespace(**{**vars(runner._standardised_split(dataset, data,
-                                                                     seed + 10 * j)),
-                                   "fold": j}) for j in range(3)]
-
-    monkeypatch.setattr(data_module, "make_splits", make_splits, raising=False)
+def _three_fold_doc(doc: dict) -> dict:
+    """The tiny study on 3-fold data (each fold the test part once; 'data.test_fraction'
+    does not apply)."""
+    del doc["data"]["test_fraction"]
+    doc["data"]["folds"] = 3
+    return doc
 
 
-def test_k_fold_run_trains_every_fold_and_averages(tiny_doc, tmp_path, monkeypatch):
-    _three_folds(monkeypatch)
-    config = parse_config(tiny_doc)
+def test_k_fold_run_trains_every_fold_and_averages(tiny_doc, tmp_path):
+    config = parse_config(_three_fold_doc(tiny_doc))
     spec = RunSpec("fixed_norm", 0, 0.25, seed=1)
     out = tmp_path / "out"
     record = _stored_run(config, spec, out)
@@ -314,16 +277,19 @@ def test_k_fold_run_trains_every_fold_and_averages(tiny_doc, tmp_path, monkeypat
         load_trained(out, spec.key)
 
 
-def test_k_fold_refuses_ensembles_and_explicit_hooks(tiny_doc, monkeypatch):
-    _three_folds(monkeypatch)
-    tiny_doc["arms"]["fixed_norm"]["ensemble"] = {"temperature": 1.0, "samples": 4}
-    config = parse_config(tiny_doc)
-    with pytest.raises(StudyConfigError, match="cannot be combined with k-fold data"):
-        train_run(config, RunSpec("fixed_norm", 0, 0.25, seed=1))
+def test_k_fold_refuses_ensembles_and_explicit_hooks(tiny_doc):
+    config = parse_config(_three_fold_doc(tiny_doc))
     with pytest.raises(ValueError, match="pass hooks=None"):
         train_run(config, RunSpec("none", 0, 0.0, seed=1), hooks=[])
-    if "folds" in {f.name for f in dataclasses.fields(DataConfig)}:
-        tiny_doc["data"]["folds"] = 3
-        with pytest.raises(StudyConfigError, match="'arms.fixed_norm.ensemble' cannot be "
-                                                   "combined with 'data.folds' = 3"):
-            parse_config(tiny_doc)
+    # refused when the config is read ...
+    tiny_doc["arms"]["fixed_norm"]["ensemble"] = {"temperature": 1.0, "samples": 4}
+    with pytest.raises(StudyConfigError, match="'arms.fixed_norm.ensemble' cannot be "
+                                               "combined with 'data.folds' = 3"):
+        parse_config(tiny_doc)
+    # ... and by the runner, for a config assembled in code
+    sampling = EnsembleConfig(temperature=1.0, samples=4)
+    config = dataclasses.replace(config, arms=tuple(
+        dataclasses.replace(a, ensemble=sampling) if a.name == "fixed_norm" else a
+        for a in config.arms))
+    with pytest.raises(StudyConfigError, match="cannot be combined with k-fold data"):
+        train_run(config, RunSpec("fixed_norm", 0, 0.25, seed=1))

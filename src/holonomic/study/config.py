@@ -902,10 +902,9 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
         base_dir=str(base),
         audit_every=_parse_audit(_get_table(doc, "audit")),
     )
-    declared_task = getattr(config.data, "task", None)
-    if declared_task is not None:  # data.task given: check the selection now, not at start
-        selection_metric(config, declared_task)
-    folds = getattr(config.data, "folds", None) or 1
+    if config.data.task is not None:  # data.task given: check the selection now, not at start
+        selection_metric(config, config.data.task)
+    folds = config.data.folds or 1
     for arm in config.arms:
         if arm.ensemble is not None and folds > 1:
             raise _fail(f"'arms.{arm.name}.ensemble' cannot be combined with 'data.folds' = "

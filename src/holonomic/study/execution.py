@@ -20,8 +20,6 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
-import hashlib
-import json
 import os
 import signal
 import sys
@@ -32,7 +30,6 @@ from multiprocessing import get_all_start_methods, get_context
 from pathlib import Path
 from typing import Callable, Iterator, Sequence
 
-import numpy as np
 import torch
 
 from holonomic.study import storage
@@ -63,20 +60,9 @@ _PR_SET_PDEATHSIG = 1  # from <linux/prctl.h>
 # Checks made before anything is written
 
 
-def data_fingerprint(config: StudyConfig, dataset=None) -> str:
-    """Fingerprint of the study's data contents (``Dataset.fingerprint``; for a data set
-    without one, a hash of its arrays and class names)."""
-    dataset = load_dataset(config) if dataset is None else dataset
-    fingerprint = getattr(dataset, "fingerprint", "")
-    if fingerprint:
-        return fingerprint
-    digest = hashlib.sha256()
-    for array in (dataset.x, dataset.y):
-        array = np.ascontiguousarray(array)
-        digest.update(f"{array.dtype.str}{array.shape}".encode())
-        digest.update(array.tobytes())
-    digest.update(json.dumps(list(dataset.classes)).encode())
-    return digest.hexdigest()[:16]
+def data_fingerprint(config: StudyConfig) -> str:
+    """Fingerprint of the study's data contents (``Dataset.fingerprint``)."""
+    return load_dataset(config).fingerprint
 
 
 def _data_name(config: StudyConfig) -> str:
@@ -167,7 +153,7 @@ def prepare_runs(config: StudyConfig, out_dir: str | Path, specs: Sequence[RunSp
     storage.check_output_dir(out_dir)
     dataset = load_dataset(config)
     done = storage.read_records(out_dir, [s.key for s in specs], invalid)
-    check_compatible(config, done, out_dir, data_fingerprint(config, dataset))
+    check_compatible(config, done, out_dir, dataset.fingerprint)
     check_model(config, dataset)
     return done
 
@@ -186,8 +172,6 @@ def _execute(config: StudyConfig, spec: RunSpec, out_dir: str) -> str:
     with storage.output_errors(default=f"the files of run {spec.key} under {out_dir}"):
         with import_path(config.base_dir if config.model.factory is not None else None):
             record = train_run(config, spec, out_dir=out_dir)
-        if not record.get("data_fingerprint"):
-            record["data_fingerprint"] = data_fingerprint(config)
         storage.write_record(out_dir, record)
     return spec.key
 

@@ -27,7 +27,8 @@ import numpy as np
 from scipy import stats as sps
 
 from holonomic.study import storage
-from holonomic.study.config import BASELINE_ARM, StudyConfig, StudyConfigError
+from holonomic.study.config import BASELINE_ARM, StudyConfig, StudyConfigError, selection_metric
+from holonomic.study.data import describe_scheme, load_dataset
 from holonomic.study.ensemble_report import (
     ensemble_lines,
     ensemble_metric_names,
@@ -163,24 +164,6 @@ def _first_record(config: StudyConfig, records: dict[str, dict]) -> dict:
     raise ValueError("no run records: nothing to report")
 
 
-def _selection_metric(config: StudyConfig, task: Task) -> str:
-    """``study.selection``, or the task's default when it is not set.
-
-    Uses ``selection_metric(config, task)`` of :mod:`holonomic.study.config` (or of the
-    runner) when there is one; otherwise ``config.selection``, defaulting to ``val_rmse``
-    (regression) or ``val_accuracy`` (classification).
-    """
-    from holonomic.study import config as config_module
-    from holonomic.study import runner
-
-    chooser = (getattr(config_module, "selection_metric", None)
-               or getattr(runner, "selection_metric", None))
-    if chooser is not None:
-        return chooser(config, task)
-    selection = getattr(config, "selection", None)
-    return selection or ("val_rmse" if task.is_regression else "val_accuracy")
-
-
 def study_metrics(config: StudyConfig, records: dict[str, dict]) -> StudyMetrics:
     """The task, metric names and selection metric of a study, read from its records.
 
@@ -197,7 +180,7 @@ def study_metrics(config: StudyConfig, records: dict[str, dict]) -> StudyMetrics
     if not metrics:
         raise ValueError(f"run {first.get('key')!r} holds none of the {name} metrics "
                          f"{', '.join('test_' + m for m in task.metrics)}")
-    selection = _selection_metric(config, task)
+    selection = selection_metric(config, task)
     allowed = [f"val_{m}" for m in metrics]
     if selection not in allowed:
         raise StudyConfigError(
@@ -386,32 +369,19 @@ def audit_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, An
 
 
 def _n_train_values(records: dict[str, dict]) -> list[int]:
-    """Every training-set size the runs used (per fold where runs have folds)."""
+    """Every training-set size the runs used: each record's ``n_train``, and with k-fold
+    data each fold's (``fold_details``)."""
     sizes: set[int] = set()
     for record in records.values():
-        value = record.get("n_train")
-        sizes.update(int(v) for v in (value if isinstance(value, (list, tuple)) else [value])
-                     if v is not None)
-        for key in ("fold_details", "folds"):
-            for fold in record.get(key) or []:
-                if isinstance(fold, dict) and fold.get("n_train") is not None:
-                    sizes.add(int(fold["n_train"]))
+        sizes.add(int(record["n_train"]))
+        sizes.update(int(fold["n_train"]) for fold in record.get("fold_details") or [])
     return sorted(sizes)
 
 
 def _scheme(config: StudyConfig) -> str:
-    """One sentence on how rows are split (``holonomic.study.data.describe_scheme`` when
-    the data module has it)."""
-    from holonomic.study import data
-
-    describe = getattr(data, "describe_scheme", None)
-    if describe is not None:
-        return str(describe(config.data)).rstrip(".")
-    d = config.data
-    train = ("the remaining rows" if d.train_size is None else
-             f"a stratified sample of {d.train_size} of the remaining rows")
-    return (f"per seed, stratified by class: test {d.test_fraction:g} and validation "
-            f"{d.val_fraction:g} of all rows, training {train}")
+    """One sentence on how rows are split, with the part sizes of the first seed's splits
+    (:func:`holonomic.study.data.describe_scheme`)."""
+    return describe_scheme(config.data, load_dataset(config), config.seeds[0]).rstrip(".")
 
 
 def _weights_count(record: dict) -> int:

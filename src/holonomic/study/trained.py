@@ -103,7 +103,7 @@ def save_run_weights(out_dir: str | Path, spec: Any, model: nn.Module, dataset: 
         "n_classes": int(task.n_classes),
         "n_outputs": int(task.n_outputs),
         "classes": [str(c) for c in dataset.classes],
-        "feature_names": [str(n) for n in getattr(dataset, "feature_names", ())],
+        "feature_names": list(dataset.feature_names),
         "feature_mean": torch.as_tensor(np.asarray(split.feature_mean, dtype=np.float64)),
         "feature_std": torch.as_tensor(np.asarray(split.feature_std, dtype=np.float64)),
         "target_mean": float(task.target_mean),
@@ -120,7 +120,7 @@ def save_run_weights(out_dir: str | Path, spec: Any, model: nn.Module, dataset: 
         "fold": fold,
         "folds": int(folds),
         "layers": [str(name) for name in layers],
-        "data_fingerprint": str(getattr(dataset, "fingerprint", "")),
+        "data_fingerprint": dataset.fingerprint,
     }
     _write_atomic(path, payload)
     return os.path.relpath(path, out_dir).replace(os.sep, "/")
