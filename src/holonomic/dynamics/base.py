@@ -19,6 +19,7 @@ from torch import Tensor
 
 from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of, parameter_label
 from holonomic.geometry.base import check_positive
+from holonomic.geometry.registry import check_not_replaced
 
 __all__ = ["IntegrationError", "ParameterStepInfo", "StepInfo", "ConstrainedOptimizer", "Pending"]
 
@@ -221,7 +222,10 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         Raises:
             IntegrationError: a non-finite gradient or a failed projection;
                 nothing (weights, momenta, generator states) is changed.
+            ValueError: a parameter was replaced in its module after this
+                optimizer was built (nothing is changed).
         """
+        check_not_replaced(self.param_groups)
         if not getattr(self, "_first_step_checked", False):
             from holonomic.distributed import on_first_step  # lazy: only runs checks under torch.distributed
 
