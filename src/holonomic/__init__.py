@@ -7,7 +7,16 @@ SHAKE/RATTLE projections at a temperature you choose.
 """
 
 from holonomic.dynamics import IntegrationError, Langevin, OverdampedLangevin, StepInfo
-from holonomic.geometry import Constraint, FixedNorm, Orthonormal, constrain, constraint_of, residuals
+from holonomic.geometry import (
+    Constraint,
+    FixedNorm,
+    Orthonormal,
+    constrain,
+    constraint_of,
+    extrinsic_mean,
+    project_average,
+    residuals,
+)
 from holonomic.sampling import AdaptiveLangevin
 from holonomic.audit import Audit, repair
 
@@ -20,6 +29,8 @@ __all__ = [
     "constrain",
     "constraint_of",
     "residuals",
+    "project_average",
+    "extrinsic_mean",
     "Langevin",
     "OverdampedLangevin",
     "AdaptiveLangevin",

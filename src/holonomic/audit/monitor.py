@@ -416,8 +416,10 @@ class Audit:
             alarms.append(_alarm(
                 "residual", name, step, out["residual_max"], tol,
                 f"{name} ({out['constraint']}) is off its constraint set by {out['residual_max']:.3g} "
-                f"(relative) at step {step}, above {tol:.3g}; the optimizer does not keep the "
-                "constraint -- use a holonomic integrator or call holonomic.repair(model)"))
+                f"(relative) at step {step}, above {tol:.3g}; whatever moved it does not keep the "
+                "constraint (an optimizer such as AdamW, a weight average, a replaced parameter) -- use a "
+                "holonomic integrator, call holonomic.repair(model), or read an averaged model through "
+                "holonomic.project_average"))
         tan = out["tangency_residual"]
         ttol = th.tangency_tolerance if th.tangency_tolerance is not None else default_tangency_tolerance(p.dtype)
         if tan is not None and not tan <= ttol:

@@ -1,5 +1,6 @@
 """Geometry: constraint sets for parameter tensors and how to project onto them."""
 
+from holonomic.geometry.averaging import extrinsic_mean, project_average
 from holonomic.geometry.base import Constraint, ShakeResult, default_tolerance
 from holonomic.geometry.euclidean import UNCONSTRAINED, Unconstrained
 from holonomic.geometry.registry import constrain, constraint_of, parameter_label, residuals
@@ -17,5 +18,7 @@ __all__ = [
     "constraint_of",
     "parameter_label",
     "residuals",
+    "extrinsic_mean",
+    "project_average",
     "default_tolerance",
 ]
