@@ -20,11 +20,11 @@ Conventions
   (the case that matters) but can be noticeable for anticorrelated series, where the window
   is only a few lags long (AR(1) with rho = -0.4: estimate about 0.40 against 0.43).
 * With several chains the autocorrelation is the multi-chain combination of Vehtari et al.
-  (2021, eq. 10 of the preprint; the form Stan uses), which also counts between-chain
+  (2021, eq. 10 of the preprint), which also counts between-chain
   disagreement as correlation: :math:`\rho(t) = 1 - (W - \bar C(t)) / \widehat{\mathrm{var}}^+`,
   where :math:`\bar C(t)` is the mean over chains of the (1/n normalised) autocovariance.
-  Vehtari et al. truncate the sum with Geyer's initial monotone sequence; here Sokal's window
-  is used instead, as in the rest of this module.
+  Vehtari et al. truncate the sum with Geyer's (1992) initial monotone sequence; here
+  Sokal's window is used instead, as in the rest of this module.
 * Split R-hat halves each chain (dropping the middle draw of odd-length chains) and
   compares within- and between-half variances. The rank-normalised version replaces the
   pooled draws by normal scores of their ranks,
@@ -39,7 +39,10 @@ References
 * N. Madras and A. D. Sokal, J. Stat. Phys. 50 (1988) 109-186 (window and error formula).
 * A. Vehtari, A. Gelman, D. Simpson, B. Carpenter and P.-C. Buerkner, Rank-normalization,
   folding, and localization: an improved R-hat for assessing convergence of MCMC,
-  Bayesian Analysis 16 (2021) 667-718.
+  Bayesian Analysis 16 (2021) 667-718 (rank-normalised R-hat and ESS, multi-chain
+  autocorrelation).
+* C. J. Geyer, Practical Markov chain Monte Carlo, Statistical Science 7 (1992) 473-483
+  (initial positive and initial monotone sequence estimators).
 """
 
 from __future__ import annotations
@@ -188,7 +191,8 @@ def integrated_autocorrelation_time(chains, c: float = 5.0) -> AutocorrelationTi
     found = bool(ok.any())
     window = int(lags[np.argmax(ok)]) if found else n - 1
     # Short or strongly disagreeing chains can make the sum negative; cap the implied ESS at
-    # N log10(N) as Stan does (recalled from memory), so tau >= 1 / log10(N).
+    # N log10(N), the bound used with the estimator of Vehtari et al. (2021) (recalled from
+    # memory, not checked against the paper), so tau >= 1 / log10(N).
     tau = max(float(taus[window - 1]), 1.0 / math.log10(max(m * n, 10)))
     stderr = abs(tau) * math.sqrt(2.0 * (2 * window + 1) / (m * n))
     return AutocorrelationTime(tau=tau, window=window, stderr=stderr, window_found=found,
