@@ -106,7 +106,11 @@ def constrain(module: nn.Module, **constraints: Constraint) -> nn.Module:
             raise ValueError(
                 f"{name!r} is not a parameter of {type(owner).__name__} (its parameters: {available})"
             )
-        label = f"{type(owner).__name__}.{leaf}"
+        # the qualified name when the module was reached through its parent
+        # (``constrain(model, **{"encoder.fc1.weight": ...})``); error
+        # messages of the integrators use it for optimizers built from
+        # ``model.parameters()`` (``model.named_parameters()`` gives it anyway)
+        label = name if "." in name else f"{type(owner).__name__}.{leaf}"
         constraint.validate_shape(param.shape, label)
         if param.is_sparse:
             raise ValueError(f"{label}: sparse parameters cannot be constrained")
