@@ -179,16 +179,30 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         return gen
 
     def state_dict(self) -> dict[str, Any]:
-        """As ``torch.optim.Optimizer.state_dict`` plus ``"seed"`` and the
+        """As ``torch.optim.Optimizer.state_dict`` plus ``"integrator"`` (the
+        class name, checked by :meth:`load_state_dict`), ``"seed"`` and the
         generator states, so a resumed run draws the same noise.  Loadable
         with ``torch.load(weights_only=True)``."""
         sd = super().state_dict()
+        sd["integrator"] = type(self).__name__
         sd["seed"] = self.seed
         sd["generators"] = {k: g.get_state() for k, g in self._generators.items()}
         return sd
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        """Load a dict saved by :meth:`state_dict` of the same class for the
+        same parameters.
+
+        Raises:
+            ValueError: the dict was saved by another optimizer class (another
+                integrator, ``torch.optim.SGD``, ...), for other param groups
+                or parameters, or holds a momentum of another shape than its
+                parameter; the message names the parameter and the mismatch,
+                and nothing is loaded.
+        """
+        self._check_state_dict(state_dict)
         state_dict = dict(state_dict)
+        state_dict.pop("integrator", None)
         seed = state_dict.pop("seed", self.seed)
         generators = state_dict.pop("generators", {})
         super().load_state_dict(state_dict)
@@ -196,6 +210,104 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         self._generators = {}
         for key, gen_state in generators.items():
             self.generator(torch.device(key)).set_state(gen_state.to("cpu", torch.uint8))
+
+    #: Keys of the per-parameter state (``self.state[p]``) that this class
+    #: keeps; a loaded state with other keys comes from another optimizer.
+    _state_keys: tuple[str, ...] = ("momentum",)
+
+    def _check_state_dict(self, state_dict: Any) -> None:
+        """Refuse a state dict this optimizer cannot continue from (see
+        :meth:`load_state_dict`); changes nothing."""
+        me = type(self).__name__
+        if not isinstance(state_dict, dict) or "state" not in state_dict or "param_groups" not in state_dict:
+            raise ValueError(f"{me}.load_state_dict: expected a dict with 'state' and 'param_groups' as "
+                             f"returned by state_dict(), got {type(state_dict).__name__}")
+        saved_class = state_dict.get("integrator")
+        if saved_class is not None and saved_class != me:
+            raise ValueError(f"{me}.load_state_dict: the state dict was saved by {saved_class}, not by {me}; "
+                             f"build a {saved_class} to resume it, or start {me} from fresh state")
+        saved_groups = state_dict["param_groups"]
+        if len(saved_groups) != len(self.param_groups):
+            raise ValueError(f"{me}.load_state_dict: the state dict has {len(saved_groups)} param group(s), "
+                             f"this optimizer {len(self.param_groups)}; build the optimizer with the same "
+                             "param groups as the one that was saved")
+        required = set(self.defaults) - {"params", "param_names"}
+        id_map: dict[Any, tuple[Tensor, str, int]] = {}
+        for g_index, (group, saved) in enumerate(zip(self.param_groups, saved_groups)):
+            if len(saved["params"]) != len(group["params"]):
+                raise ValueError(f"{me}.load_state_dict: param group {g_index} has {len(saved['params'])} "
+                                 f"parameter(s) in the state dict and {len(group['params'])} here; build the "
+                                 "optimizer with the same parameters as the one that was saved")
+            keys = set(saved) - {"params", "param_names"}
+            mine = set(group) - {"params", "param_names"}
+            missing = sorted(required - keys)
+            if saved_class is None and keys != mine:  # an older dict: its settings must be exactly ours
+                missing = sorted(mine - keys)
+                extra = sorted(keys - mine)
+                if extra and not missing:
+                    raise ValueError(f"{me}.load_state_dict: param group {g_index} of the state dict has "
+                                     f"settings {extra} that {me} does not use; was it saved by another "
+                                     "optimizer?")
+            if missing:
+                raise ValueError(f"{me}.load_state_dict: param group {g_index} of the state dict lacks the "
+                                 f"settings {missing} of {me}; was it saved by another optimizer (e.g. "
+                                 "torch.optim.SGD) or another integrator?")
+            candidate = {k: v for k, v in saved.items() if k not in ("params", "param_names")}
+            try:
+                self._validate_group(candidate)
+            except ValueError as exc:
+                raise ValueError(f"{me}.load_state_dict: param group {g_index} of the state dict: {exc}") from None
+            names = group.get("param_names") or saved.get("param_names")
+            for index, (key, p) in enumerate(zip(saved["params"], group["params"])):
+                id_map[key] = (p, step_label(p, names, g_index, index), g_index)
+        for key, entry in state_dict["state"].items():
+            if key not in id_map:
+                continue  # torch keeps state of unknown ids as it is
+            p, label, g_index = id_map[key]
+            unknown = sorted(set(entry) - set(self._state_keys))
+            if unknown:
+                keeps = ", ".join(repr(k) for k in self._state_keys) or "nothing"
+                raise ValueError(f"{me}.load_state_dict: the state of {label} (param group {g_index}) has "
+                                 f"keys {unknown}, but {me} keeps {keeps}; was it saved by another optimizer?")
+            for name, value in entry.items():
+                if isinstance(value, Tensor) and value.shape != p.shape:
+                    raise ValueError(f"{me}.load_state_dict: {name} of {label} (param group {g_index}) has "
+                                     f"shape {tuple(value.shape)} in the state dict, but the parameter has shape "
+                                     f"{tuple(p.shape)}; load a checkpoint of the same model")
+
+    # -- copies -------------------------------------------------------------------
+    #: Attributes that ``copy.deepcopy`` and ``pickle`` leave out: caches the
+    #: fast and compiled paths rebuild on the next step (the native kernel's
+    #: table holds raw pointers into the original's tensors), and torch's
+    #: hook registries, which torch's own ``__getstate__`` leaves out too.
+    _transient: tuple[str, ...] = (
+        "_scratch_buffers", "_native_table", "_scalar_table", "_native_failed", "_compile_failed",
+        "_first_step_checked", "_optimizer_step_pre_hooks", "_optimizer_step_post_hooks",
+        "_optimizer_state_dict_pre_hooks", "_optimizer_state_dict_post_hooks",
+        "_optimizer_load_state_dict_pre_hooks", "_optimizer_load_state_dict_post_hooks",
+    )
+
+    def __getstate__(self) -> dict[str, Any]:
+        """Everything a copy needs to continue exactly as this optimizer
+        would (torch's own ``__getstate__`` keeps only ``defaults``, ``state``
+        and ``param_groups``): settings, the seed, the generator states and
+        any subclass state, less the caches in ``_transient``."""
+        state = {k: v for k, v in self.__dict__.items() if k not in self._transient}
+        state["_generators"] = {k: g.get_state() for k, g in self._generators.items()}
+        return state
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        """Restore a copy made by :meth:`__getstate__` (also called by torch's
+        ``load_state_dict`` with ``state`` and ``param_groups`` only)."""
+        state = dict(state)
+        generator_states = state.pop("_generators", None)
+        super().__setstate__(state)
+        if generator_states is not None:
+            self._generators = {}
+            for key, gen_state in generator_states.items():
+                gen = torch.Generator(device=torch.device(key))
+                gen.set_state(gen_state)
+                self._generators[key] = gen
 
     # -- stepping -------------------------------------------------------------
     @staticmethod
@@ -235,8 +347,46 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
+        self._check_step_inputs()
         self._take_step()
         return loss
+
+    def _check_step_inputs(self) -> None:
+        """Refuse, before any work, group settings changed after construction
+        to invalid values (the constructor's checks, run on a copy of each
+        group) and momenta whose shape no longer matches their parameter
+        (a parameter resized under the optimizer).
+
+        Raises:
+            ValueError: naming the param group and setting, or the parameter;
+                nothing is changed.
+        """
+        for g_index, group in enumerate(self.param_groups):
+            settings = {k: v for k, v in group.items() if k not in ("params", "param_names")}
+            if "lr" in settings:
+                h = settings["lr"]
+                if isinstance(h, Tensor):
+                    h = h.item()
+                try:
+                    h = float(h)
+                except (TypeError, ValueError):
+                    raise ValueError(f"param group {g_index}: 'lr' must be a real number, got {h!r}") from None
+                if not h >= 0 or math.isinf(h):
+                    raise ValueError(f"param group {g_index}: 'lr' must be >= 0 and finite, got {h!r}")
+            try:
+                self._validate_group(settings)
+            except (ValueError, KeyError) as exc:
+                raise ValueError(f"param group {g_index}: {exc} (changed after construction?); nothing "
+                                 "was changed") from None
+            names = group.get("param_names")
+            for index, p in enumerate(group["params"]):
+                momentum = self.state[p].get("momentum") if p in self.state else None
+                if momentum is not None and momentum.shape != p.shape:
+                    label = step_label(p, names, g_index, index)
+                    raise ValueError(
+                        f"{label} (param group {g_index}) has shape {tuple(p.shape)} but its momentum has shape "
+                        f"{tuple(momentum.shape)}: the parameter was resized after the optimizer took steps; "
+                        "nothing was changed. Build a new optimizer for the new shapes.")
 
     #: Internal switch: ``True`` forces the plain per-parameter path, the
     #: reference that every fast path is tested against (tests/speed).

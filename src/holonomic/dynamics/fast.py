@@ -64,6 +64,7 @@ from holonomic.dynamics.base import ParameterStepInfo, Pending, StepInfo, step_l
 from holonomic.dynamics.fast_orthonormal import square_orthonormal_baoab
 from holonomic.dynamics.operators import ou_coefficients
 from holonomic.geometry import UNCONSTRAINED, FixedNorm, Orthonormal, Unconstrained, constraint_of
+from holonomic.geometry.base import HALF_DTYPES
 
 if TYPE_CHECKING:  # pragma: no cover
     from holonomic.dynamics.langevin import Langevin
@@ -199,6 +200,8 @@ def _tensors_eligible(p: Tensor, state: dict[str, Any]) -> bool:
 
 
 def _geometry_eligible(p: Tensor, geometry: Any) -> bool:
+    if p.dtype in HALF_DTYPES and not isinstance(geometry, Unconstrained):
+        return False  # the plain path projects in float32 (holonomic.geometry.base.in_float32)
     if isinstance(geometry, Orthonormal):
         return _square(p)
     return isinstance(geometry, Unconstrained) or (isinstance(geometry, FixedNorm) and p.dim() >= 1)

@@ -243,6 +243,8 @@ class OverdampedLangevin(ConstrainedOptimizer):
         Energy Computations (2010).
     """
 
+    _state_keys: tuple[str, ...] = ()  # no momentum is kept
+
     def __init__(
         self,
         params: Iterable[Any],

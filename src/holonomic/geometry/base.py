@@ -22,14 +22,16 @@ through the operations below, all in the parameter's own shape:
 
 from __future__ import annotations
 
+import functools
 import math
 from abc import ABC, abstractmethod
-from typing import NamedTuple
+from typing import Any, Callable, NamedTuple, TypeVar
 
 import torch
 from torch import Tensor
 
-__all__ = ["Constraint", "ShakeResult", "check_positive", "default_tolerance", "matrix_shape"]
+__all__ = ["Constraint", "ShakeResult", "check_positive", "default_tolerance", "matrix_shape",
+           "HALF_DTYPES", "in_float32"]
 
 
 class ShakeResult(NamedTuple):
@@ -43,6 +45,51 @@ class ShakeResult(NamedTuple):
     position: Tensor
     ok: Tensor
     iterations: int
+
+
+#: Dtypes whose constraint operations run in float32 (:func:`in_float32`).
+HALF_DTYPES: tuple[torch.dtype, ...] = (torch.float16, torch.bfloat16)
+
+_Method = TypeVar("_Method", bound=Callable[..., Any])
+
+
+def _cast_back(out: Any, dtype: torch.dtype) -> Any:
+    if isinstance(out, ShakeResult):
+        position = out.position.to(dtype)
+        return ShakeResult(position, out.ok & torch.isfinite(position).all(), out.iterations)
+    if isinstance(out, tuple):
+        return tuple(_cast_back(t, dtype) for t in out)
+    if isinstance(out, Tensor) and out.is_floating_point():
+        return out.to(dtype)
+    return out
+
+
+def in_float32(keep_float32: bool = False) -> Callable[[_Method], _Method]:
+    """Decorator for constraint operations ``method(self, w, *tensors)``:
+    for float16/bfloat16 ``w`` the operation runs on float32 copies of its
+    tensor arguments and its tensor results are rounded back to ``w``'s
+    dtype (unless ``keep_float32``, used for residuals, which are then
+    measured exactly on the half-precision values).
+
+    The linear algebra (SVD, matrix exponential) has no half-precision
+    kernels, and SHAKE in half precision cannot meet a useful tolerance;
+    computed in float32 and rounded once, a point is on its set to the
+    rounding error of its dtype (about ``eps`` of the dtype, relative).
+    """
+
+    def decorate(method: _Method) -> _Method:
+        @functools.wraps(method)
+        def wrapper(self: Any, w: Tensor, *args: Any, **kwargs: Any) -> Any:
+            dtype = w.dtype
+            if dtype not in HALF_DTYPES:
+                return method(self, w, *args, **kwargs)
+            up = [a.float() if isinstance(a, Tensor) and a.dtype in HALF_DTYPES else a for a in args]
+            out = method(self, w.float(), *up, **kwargs)
+            return out if keep_float32 else _cast_back(out, dtype)
+
+        return wrapper  # type: ignore[return-value]
+
+    return decorate
 
 
 def default_tolerance(dtype: torch.dtype) -> float:

@@ -263,7 +263,11 @@ def constrain(module: nn.Module, *, replace: bool = False, **constraints: Constr
             raise ValueError(
                 f"{name!r} is not a parameter of {type(owner).__name__} (its parameters: {available})"
             )
-        label = f"{type(owner).__name__}.{leaf}"
+        # the qualified name when the module was reached through its parent
+        # (``constrain(model, **{"encoder.fc1.weight": ...})``); error
+        # messages of the integrators use it for optimizers built from
+        # ``model.parameters()`` (``model.named_parameters()`` gives it anyway)
+        label = name if "." in name else f"{type(owner).__name__}.{leaf}"
         constraint.validate_shape(param.shape, label)
         previous = constraint_of(param)
         if previous is not None and previous != constraint and not replace:

@@ -7,7 +7,7 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from holonomic.geometry.base import Constraint, ShakeResult, check_positive, matrix_shape
+from holonomic.geometry.base import Constraint, ShakeResult, check_positive, in_float32, matrix_shape
 
 __all__ = ["FixedNorm"]
 
@@ -95,6 +95,7 @@ class FixedNorm(Constraint):
                 f"vector has length {d}, which leaves no freedom; use over='all' or the other axis"
             )
 
+    @in_float32()
     def project(self, w: Tensor) -> Tensor:
         v = self._vectors(w)
         n = v.norm(dim=1, keepdim=True)
@@ -106,12 +107,14 @@ class FixedNorm(Constraint):
             )
         return self._unvectors(v * (self.radius / n), w.shape)
 
+    @in_float32()
     def tangent(self, w: Tensor, v: Tensor) -> Tensor:
         a = self._vectors(w)
         b = self._vectors(v)
         coef = (a * b).sum(dim=1, keepdim=True) / (a * a).sum(dim=1, keepdim=True)
         return self._unvectors(b - coef * a, w.shape)
 
+    @in_float32()
     def shake(self, w: Tensor, y: Tensor) -> ShakeResult:
         a_v = self._vectors(w)
         y_v = self._vectors(y)
@@ -126,6 +129,7 @@ class FixedNorm(Constraint):
         ok_all = ok.all() & torch.isfinite(new).all()
         return ShakeResult(self._unvectors(new, w.shape), ok_all, 1)
 
+    @in_float32()
     def geodesic(self, w: Tensor, p: Tensor, t: float) -> tuple[Tensor, Tensor]:
         r = self.radius
         wv = self._vectors(w)
@@ -142,13 +146,16 @@ class FixedNorm(Constraint):
         new_p = new_p - coef * new_w
         return self._unvectors(new_w, w.shape), self._unvectors(new_p, w.shape)
 
+    @in_float32(keep_float32=True)
     def violations(self, w: Tensor) -> Tensor:
         """``|w_i| / r - 1`` for every constrained vector."""
         return self._vectors(w).norm(dim=1) / self.radius - 1
 
+    @in_float32(keep_float32=True)
     def residual(self, w: Tensor) -> Tensor:
         return self.violations(w).abs().max()
 
+    @in_float32(keep_float32=True)
     def tangent_residual(self, w: Tensor, v: Tensor) -> Tensor:
         a = self._vectors(w)
         b = self._vectors(v)

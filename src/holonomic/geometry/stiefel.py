@@ -7,7 +7,8 @@ from dataclasses import dataclass
 import torch
 from torch import Tensor
 
-from holonomic.geometry.base import Constraint, ShakeResult, check_positive, matrix_shape, default_tolerance
+from holonomic.geometry.base import (Constraint, ShakeResult, check_positive, default_tolerance, in_float32,
+                                     matrix_shape)
 
 __all__ = ["Orthonormal", "stiefel_shake", "stiefel_tangent", "stiefel_geodesic"]
 
@@ -188,8 +189,15 @@ class Orthonormal(Constraint):
                 f"cannot be orthonormal in dimension {rows}; use over='rows' for a wide matrix"
             )
 
+    @in_float32()
     def project(self, w: Tensor) -> Tensor:
         x = self._frame(w)
+        if not bool(torch.isfinite(x).all()):  # the SVD would fail with a linear-algebra error
+            raise ValueError(
+                "Orthonormal: the matrix has non-finite values (NaN or inf) and no nearest "
+                "orthonormal point; initialise it with finite values (a NaN weight usually "
+                "comes from a diverged loss)"
+            )
         u, sig, vh = torch.linalg.svd(x, full_matrices=False)
         # numerical rank test (as in numpy.linalg.matrix_rank): the polar factor
         # is unique exactly when the matrix has full rank
@@ -201,28 +209,34 @@ class Orthonormal(Constraint):
             )
         return self._unframe(u @ vh, w.shape)
 
+    @in_float32()
     def tangent(self, w: Tensor, v: Tensor) -> Tensor:
         return self._unframe(stiefel_tangent(self._frame(w), self._frame(v)), w.shape)
 
+    @in_float32()
     def shake(self, w: Tensor, y: Tensor) -> ShakeResult:
         new, ok, it = stiefel_shake(
             self._frame(w), self._frame(y), tolerance=self._tol(w.dtype), max_iterations=self.max_iterations
         )
         return ShakeResult(self._unframe(new, w.shape), ok, it)
 
+    @in_float32()
     def geodesic(self, w: Tensor, p: Tensor, t: float) -> tuple[Tensor, Tensor]:
         x, v = stiefel_geodesic(self._frame(w), self._frame(p), t)
         return self._unframe(x, w.shape), self._unframe(v, w.shape)
 
+    @in_float32(keep_float32=True)
     def violations(self, w: Tensor) -> Tensor:
         """The entries of ``X^T X / s^2 - I``."""
         x = self._frame(w)
         eye = torch.eye(x.shape[-1], dtype=x.dtype, device=x.device)
         return (x.t() @ x - eye).reshape(-1)
 
+    @in_float32(keep_float32=True)
     def residual(self, w: Tensor) -> Tensor:
         return self.violations(w).abs().max()
 
+    @in_float32(keep_float32=True)
     def tangent_residual(self, w: Tensor, v: Tensor) -> Tensor:
         x = self._frame(w)
         u = self._frame(v)

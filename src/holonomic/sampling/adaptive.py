@@ -197,6 +197,7 @@ class AdaptiveLangevin(Langevin):
         return sd
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        self._check_state_dict(state_dict)  # the class, groups and shapes first
         state_dict = dict(state_dict)
         frictions = state_dict.pop("thermostat_friction", None)
         if frictions is None or len(frictions) != len(self.param_groups):
@@ -285,6 +286,7 @@ class AdaptiveLangevin(Langevin):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
+        self._check_step_inputs()  # before _open_step reads the settings and momenta
         self._scratch = self._open_step()
         try:
             super().step()  # O, A per parameter; commits, or raises having changed nothing
