@@ -3,7 +3,6 @@ geodesic drifts) and overdamped (projected Euler-Maruyama)."""
 
 from __future__ import annotations
 
-import math
 from typing import Any, Callable, Iterable
 
 import torch
