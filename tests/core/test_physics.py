@@ -98,11 +98,14 @@ def test_temperature_zero_unconstrained_equals_torch_sgd(momentum, weight_decay)
 def test_from_sgd_mapping_values():
     p = [nn.Parameter(torch.zeros(3))]
     opt = hn.Langevin.from_sgd(p, lr=0.02, momentum=0.9)
-    h = opt.param_groups[0]["lr"]
-    gamma = opt.param_groups[0]["friction"]
+    assert opt.param_groups[0]["lr"] == 0.02 and opt.param_groups[0]["momentum"] == 0.9
+    h, gamma = opt.step_and_friction(0)
     assert math.isclose(h * h * (1 + math.exp(-gamma * h)) / 2, 0.02, rel_tol=1e-14)
     assert math.isclose(math.exp(-gamma * h), 0.9, rel_tol=1e-14)
-    assert hn.Langevin.from_sgd(p, lr=0.02, momentum=0.0).param_groups[0]["friction"] == math.inf
+    assert hn.Langevin.from_sgd(p, lr=0.02, momentum=0.0).step_and_friction(0)[1] == math.inf
+    assert hn.Langevin(p, lr=0.02, momentum=1.0).step_and_friction(0) == (math.sqrt(0.02), 0.0)
+    # from_sgd and the constructor are the same thing
+    assert hn.Langevin(p, 0.02, 0.9).param_groups[0] == opt.param_groups[0]
 
 
 def _vmf_baoab_mean(h, rows=100_000, kappa=4.0, burn=5.0, run=20.0, seed=0):

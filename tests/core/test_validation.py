@@ -55,7 +55,10 @@ def test_from_sgd_rejects_bad_settings():
 def test_bad_param_group_is_rejected_and_step_key_accepted():
     a, b = nn.Parameter(torch.randn(3)), nn.Parameter(torch.randn(3))
     opt = hn.Langevin([{"params": [a]}, {"params": [b], "step": 0.5, "temperature": 2.0}], step=0.1)
-    assert opt.param_groups[1]["lr"] == 0.5 and opt.param_groups[1]["temperature"] == 2.0
+    h, gamma = opt.step_and_friction(1)  # the default friction 1.0 with the group's step
+    assert math.isclose(h, 0.5, rel_tol=1e-14) and math.isclose(gamma, 1.0, rel_tol=1e-14)
+    assert "step" not in opt.param_groups[1] and "friction" not in opt.param_groups[1]
+    assert opt.param_groups[1]["temperature"] == 2.0
     with pytest.raises(ValueError, match="friction"):
         opt.add_param_group({"params": [nn.Parameter(torch.randn(2))], "friction": -1})
 
@@ -81,7 +84,7 @@ def test_lr_scheduler_scales_the_step():
     holder = nn.Module()
     holder.p = p
     hn.constrain(holder, p=hn.FixedNorm())
-    opt = hn.Langevin([p], step=0.2, temperature=0.1)
+    opt = hn.Langevin([p], lr=0.2, momentum=0.8, temperature=0.1)
     sched = torch.optim.lr_scheduler.StepLR(opt, step_size=2, gamma=0.5)
     seen = []
     for _ in range(6):
@@ -90,6 +93,10 @@ def test_lr_scheduler_scales_the_step():
         sched.step()
         seen.append(opt.param_groups[0]["lr"])
     assert seen == [0.2, 0.1, 0.1, 0.05, 0.05, 0.025]
+    # h follows sqrt(lr), the friction 1/sqrt(lr) (momentum fixed): docstring of Langevin
+    h, gamma = opt.step_and_friction(0)
+    assert math.isclose(h, math.sqrt(2 * 0.025 / 1.8), rel_tol=1e-14)
+    assert math.isclose(gamma * h, -math.log(0.8), rel_tol=1e-14)
     assert hn.residuals(holder)["p"] < 1e-6
     # a schedule that reaches zero leaves the weights where they are
     opt.param_groups[0]["lr"] = 0.0

@@ -25,6 +25,7 @@ from holonomic.audit.stats import (
     kinetic_interval,
 )
 from holonomic.dynamics import Langevin
+from holonomic.dynamics.settings import integrator_step_and_friction
 from holonomic.geometry import UNCONSTRAINED, constraint_of
 from holonomic.geometry.base import check_positive
 
@@ -91,8 +92,9 @@ class Audit:
     ``weight_norm``, ``row_norm_*``  Frobenius norm; min/mean/max row norm
     ============================  ==========================================
 
-    and **per param group**: step ``h`` (group ``"lr"``), target ``T``,
-    friction ``gamma``, thermostat time ``sum gamma h`` seen so far, and the
+    and **per param group**: step ``h`` and friction ``gamma`` (from the
+    group's ``lr`` and ``momentum``: ``Langevin.step_and_friction``; for
+    other optimizers ``h`` is their ``lr``), target ``T``, thermostat time ``sum gamma h`` seen so far, and the
     pooled kinetic temperature ``sum |P|^2 / sum N_f`` over all of the
     group's parameters (unconstrained ones count ``numel`` each).
 
@@ -234,8 +236,8 @@ class Audit:
             acc[2] += 1
         if self._holonomic():
             for g_index, group in enumerate(opt.param_groups):
-                gamma, h = group.get("friction", 0.0), group.get("lr", 0.0)
-                inc = math.inf if gamma == math.inf and h > 0 else gamma * h
+                h, gamma = integrator_step_and_friction(group)
+                inc = 0.0 if h == 0 else (math.inf if gamma == math.inf else gamma * h)
                 self._thermostat_time[g_index] = self._thermostat_time.get(g_index, 0.0) + inc
 
     @torch.no_grad()
@@ -279,7 +281,7 @@ class Audit:
         temperature = float(group["temperature"])
         if temperature == 0.0:
             return "skipped: temperature 0", temperature
-        if group["friction"] == 0.0:
+        if integrator_step_and_friction(group)[1] == 0.0:
             return "skipped: friction 0 (no thermostat)", temperature
         if self._thermostat_time.get(group_index, 0.0) < self.thresholds.burn_in:
             return "skipped: burn-in", temperature
@@ -365,11 +367,16 @@ class Audit:
         groups_out = []
         if opt is not None:
             for g_index, group in enumerate(opt.param_groups):
+                h = gamma = None
+                if holonomic:
+                    h, gamma = integrator_step_and_friction(group)
+                elif "lr" in group:
+                    h = float(group["lr"])
                 g_out: dict[str, Any] = {
                     "group": g_index, "optimizer": type(opt).__name__,
-                    "step_size": float(group["lr"]) if "lr" in group else None,
+                    "step_size": h,
                     "temperature": float(group["temperature"]) if "temperature" in group else None,
-                    "friction": float(group["friction"]) if "friction" in group else None,
+                    "friction": gamma,
                     "thermostat_time": self._thermostat_time.get(g_index) if holonomic else None,
                 }
                 status, temperature = self._kinetic_status(g_index if holonomic else None)

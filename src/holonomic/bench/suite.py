@@ -165,7 +165,7 @@ def bench_steps(rounds: int, compiled: bool = False) -> dict[str, Any]:
         out["compiled_kernel"] = _kernel_name(ours)
     out["t0_vs_sgd" + suffix] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
     hot = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, temperature=1e-4, compiled=compiled)
-    plain = PlainLangevin(free.parameters(), hot.param_groups[0]["lr"], hot.param_groups[0]["friction"], 1e-4)
+    plain = PlainLangevin(free.parameters(), *hot.step_and_friction(0), 1e-4)
     if compiled:
         out["compile_seconds_hot"] = _first_call_seconds(hot.step)
         _check_compiled(hot)

@@ -18,6 +18,7 @@ import torch
 from torch import Tensor
 
 from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of, parameter_label
+from holonomic.dynamics.settings import check_lr, integrator_step_and_friction
 from holonomic.geometry.base import check_positive
 from holonomic.geometry.registry import check_not_replaced
 
@@ -134,8 +135,9 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
     """Bookkeeping common to all holonomic integrators (see module docstring).
 
     Subclasses define ``_validate_group(group)`` and ``_update(...)``.
-    Param groups may give the step as ``"step"`` or ``"lr"``; it is stored
-    under ``"lr"`` so that ``torch.optim.lr_scheduler`` schedulers scale it.
+    Param groups hold ``"lr"`` (and ``"momentum"``) with ``torch.optim.SGD``'s
+    meaning; the integrator's step and friction follow from them
+    (:meth:`step_and_friction`).
     """
 
     def __init__(self, params: Iterable[Any], defaults: dict[str, Any], *, seed: int = 0) -> None:
@@ -148,14 +150,14 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
 
     # -- groups ----------------------------------------------------------------
     def add_param_group(self, param_group: dict[str, Any]) -> None:
-        if "step" in param_group:
-            if "lr" in param_group:
-                raise ValueError("give the step size as 'step' or 'lr', not both")
-            param_group = dict(param_group)
-            param_group["lr"] = param_group.pop("step")
+        """As ``torch.optim.Optimizer.add_param_group``; a group may give the
+        integrator's ``step`` (and, for :class:`holonomic.Langevin`,
+        ``friction``) instead of ``lr`` (and ``momentum``): it is converted and
+        stored as ``lr``/``momentum`` (see :mod:`holonomic.dynamics.settings`)."""
+        param_group = self._convert_group(param_group)
         super().add_param_group(param_group)
         group = self.param_groups[-1]
-        group["lr"] = check_positive("step", group["lr"])
+        group["lr"] = check_lr(group["lr"])
         self._validate_group(group)
         for p in group["params"]:
             if p.is_sparse:
@@ -163,6 +165,23 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
             constraint = constraint_of(p)
             if constraint is not None:
                 constraint.validate_shape(p.shape, parameter_label(p, "parameter"))
+
+    def _convert_group(self, param_group: dict[str, Any]) -> dict[str, Any]:
+        """Without momentum (overdamped): ``step`` is ``lr``."""
+        if "step" in param_group:
+            if "lr" in param_group:
+                raise ValueError("give the step size as 'step' or 'lr', not both")
+            param_group = dict(param_group)
+            param_group["lr"] = param_group.pop("step")
+        return param_group
+
+    def step_and_friction(self, group_index: int = 0) -> tuple[float, float]:
+        """The integrator's step ``h`` and friction ``gamma`` of a param group,
+        computed from its current ``lr`` and ``momentum`` (so they follow a
+        scheduler): ``h = sqrt(2 lr / (1 + momentum))``, ``gamma = -ln(momentum) / h``
+        (:func:`holonomic.dynamics.settings.integrator_step_and_friction`).
+        Without momentum (:class:`holonomic.OverdampedLangevin`): ``(lr, inf)``."""
+        return integrator_step_and_friction(self.param_groups[group_index])
 
     def _validate_group(self, group: dict[str, Any]) -> None:  # pragma: no cover - abstract
         raise NotImplementedError
@@ -402,10 +421,10 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         saved_generators = {k: g.get_state() for k, g in self._generators.items()}
         pending: list[Pending] = []
         for g_index, group in enumerate(self.param_groups):
-            h = group["lr"]
-            if not h >= 0:
-                raise ValueError(f"param group {g_index}: step (group 'lr') must be >= 0, got {h!r}")
-            if h == 0:  # e.g. a schedule that decays to zero: nothing moves
+            lr = group["lr"]
+            if not lr >= 0:
+                raise ValueError(f"param group {g_index}: lr must be >= 0, got {lr!r}")
+            if lr == 0:  # e.g. a schedule that decays to zero: nothing moves
                 continue
             names = group.get("param_names")
             for index, p in enumerate(group["params"]):
@@ -443,7 +462,7 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
                         f"the projection back onto the constraint set of {u.label} (param group "
                         f"{u.group}, {u.geometry!r}) failed or gave a non-finite value after "
                         f"{u.iterations} iterations; nothing was changed. Use a smaller step "
-                        "(group 'lr'), a lower temperature, or projection='geodesic'.",
+                        "(a lower 'lr'), a lower temperature, or projection='geodesic'.",
                         parameter=u.label, reason="projection failed")
         infos = []
         for u in pending:

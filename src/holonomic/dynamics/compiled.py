@@ -80,6 +80,7 @@ from holonomic.dynamics.fast import (
     sphere_baoab_coefficients,
 )
 from holonomic.dynamics.operators import ou_coefficients
+from holonomic.dynamics.settings import integrator_step_and_friction
 from holonomic.geometry import UNCONSTRAINED, FixedNorm, Orthonormal, constraint_of
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -319,8 +320,8 @@ def _arguments(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tup
     rows = []
     noisy = any(group["temperature"] > 0 for _, _, group, _ in items)
     for p, geometry, group, _ in items:
-        h = group["lr"]
-        decay, sigma = ou_coefficients(group["friction"], h, group["temperature"])
+        h, gamma = integrator_step_and_friction(group)
+        decay, sigma = ou_coefficients(gamma, h, group["temperature"])
         momentum = opt.state[p].get("momentum")
         if momentum is None:
             momentum = fresh[p] = torch.zeros_like(p, memory_format=torch.contiguous_format)

@@ -63,6 +63,7 @@ from torch import Tensor
 from holonomic.dynamics.base import ParameterStepInfo, Pending, StepInfo, step_label
 from holonomic.dynamics.fast_orthonormal import square_orthonormal_baoab
 from holonomic.dynamics.operators import ou_coefficients
+from holonomic.dynamics.settings import integrator_step_and_friction
 from holonomic.geometry import UNCONSTRAINED, FixedNorm, Orthonormal, Unconstrained, constraint_of
 from holonomic.geometry.base import HALF_DTYPES
 
@@ -239,13 +240,13 @@ def fast_baoab_step(opt: "Langevin") -> bool:
     flags: list[Tensor] = []
     plain: list[tuple[_Entry, Pending]] = []
     for g_index, group in enumerate(opt.param_groups):
-        h = group["lr"]
-        if not h > 0:
-            if h == 0:
+        if not group["lr"] > 0:
+            if group["lr"] == 0:
                 continue
             return _abandon(opt, saved)  # the plain path raises the documented error
+        h, gamma = integrator_step_and_friction(group)
         temperature = group["temperature"]
-        decay, sigma = ou_coefficients(group["friction"], h, temperature)
+        decay, sigma = ou_coefficients(gamma, h, temperature)
         names = group.get("param_names")
         spheres: list[tuple[_Entry, Tensor, Tensor, Tensor | None, dict[str, Tensor], Tensor, str]] = []
         free: list[tuple[_Entry, Tensor, Tensor, Tensor, Tensor | None]] = []

@@ -3,8 +3,7 @@ geodesic drifts) and overdamped (projected Euler-Maruyama)."""
 
 from __future__ import annotations
 
-import math
-from typing import Any, Iterable
+from typing import Any, Callable, Iterable
 
 import torch
 from torch import Tensor
@@ -12,12 +11,18 @@ from torch import Tensor
 from holonomic.dynamics.base import (
     ConstrainedOptimizer,
     check_dataset_size,
-    check_friction,
     check_temperature,
 )
 from holonomic.dynamics.compiled import compiled_baoab_step
 from holonomic.dynamics.fast import fast_baoab_step
 from holonomic.dynamics.operators import BAOAB, Phase, Settings, overdamped_move, run_scheme
+from holonomic.dynamics.settings import (
+    check_lr,
+    check_momentum,
+    integrator_step_and_friction,
+    physics_group_to_sgd,
+    sgd_settings,
+)
 from holonomic.geometry import Constraint
 from holonomic.geometry.base import check_positive
 
@@ -64,14 +69,42 @@ class Langevin(ConstrainedOptimizer):
     heavy-ball SGD (below).  Parameters without a constraint follow the same
     scheme with identity projections (plain BAOAB).
 
-    **SGD mapping.**  With ``mu = exp(-gamma h)`` and no constraint, the
-    scheme at ``T = 0`` is ``v <- mu v - lr f``, ``W <- W + v`` with
-    ``lr = h^2 (1 + mu) / 2`` and ``v = (h/2)(1 + mu) P``, i.e.
+    **Settings: SGD's lr and momentum.**  ``group["lr"]`` and
+    ``group["momentum"]`` mean exactly what they mean for
+    ``torch.optim.SGD``; the integrator's step ``h`` and friction ``gamma``
+    follow from them (:func:`holonomic.dynamics.settings.integrator_step_and_friction`,
+    readable with :meth:`step_and_friction`)::
+
+        h = sqrt(2 lr / (1 + mu)),   gamma = -ln(mu) / h
+        (mu = 0: gamma = inf, no momentum memory; mu = 1: gamma = 0)
+
+    With ``mu = exp(-gamma h)`` and no constraint, the scheme at ``T = 0`` is
+    ``v <- mu v - lr f``, ``W <- W + v`` with ``lr = h^2 (1 + mu) / 2`` and
+    ``v = (h/2)(1 + mu) P``, i.e.
     ``torch.optim.SGD(lr=lr, momentum=mu, weight_decay=weight_decay)``
-    exactly (see :meth:`from_sgd`).  (To leading order this is the
-    ``lr = h^2`` of Chen, Fox & Guestrin 2014, sec. 3.3; the factor
-    ``(1 + mu)/2`` is exact for this splitting.)  The noise then adds
-    variance ``lr (1 - mu) T`` per coordinate and step to ``v``.
+    exactly (to roundoff).  (To leading order this is the ``lr = h^2`` of
+    Chen, Fox & Guestrin 2014, sec. 3.3; the factor ``(1 + mu)/2`` is exact
+    for this splitting.)  The noise then adds variance ``lr (1 - mu) T`` per
+    coordinate and step to ``v``.
+
+    **Changing lr or momentum** (a scheduler, ``set_params``, a hand edit of
+    the group) takes effect at the next step.  With ``mu`` fixed, ``h``
+    scales as ``sqrt(lr)`` and ``gamma`` as ``1/sqrt(lr)`` (``gamma h = -ln mu``
+    stays), so halving ``lr`` divides ``h`` by ``sqrt 2`` and multiplies the
+    friction by ``sqrt 2``; the noise variance per step, ``lr (1 - mu) T``,
+    halves; the sampled law ``exp(-U/T)`` does not change, only the
+    discretisation error and the time per step.  SGD keeps its momentum buffer
+    ``P / (mu h)`` when lr or momentum change, so that the stored momenta of a
+    group are rescaled by ``(mu' h') / (mu h)`` (new over old settings) at the
+    first step with new settings (not when the new ``lr`` is 0, which moves
+    nothing, nor after a step with ``mu = 0``); at ``T = 0`` without
+    constraints the trajectory therefore equals ``torch.optim.SGD`` under any
+    scheduler (StepLR, OneCycleLR and CyclicLR with momentum cycling,
+    ReduceLROnPlateau, SWALR).  At ``T > 0`` a large change moves the
+    kinetic temperature by the square of that factor for a while; the
+    thermostat restores it in a time of order ``1/gamma``.  The settings of
+    the momenta are kept in the group as ``"momentum_scale"`` (``mu h`` of
+    the last step that moved; ``None`` before), saved in ``state_dict``.
 
     **Units.**  ``T`` is in the units of the loss.  If ``.grad`` is the
     gradient of a *mean* loss over ``N`` examples, the Bayesian posterior at
@@ -80,14 +113,19 @@ class Langevin(ConstrainedOptimizer):
     precision of a Gaussian prior on unconstrained parameters (it has no
     effect on fixed-norm or orthonormal parameters, whose norm is fixed).
 
-    Param groups may override ``step`` (stored as ``group["lr"]`` so LR
-    schedulers scale it), ``friction``, ``temperature``, ``dataset_size``,
-    ``weight_decay``, ``projection`` and ``substeps``.
+    Param groups may override ``lr`` and ``momentum`` (or ``step`` and
+    ``friction``, converted to ``lr``/``momentum`` when the group is added;
+    a missing partner takes the default's step or friction), ``temperature``,
+    ``dataset_size``, ``weight_decay``, ``projection`` and ``substeps``.
 
     Args:
         params: parameters or param groups, as for any torch optimizer.
-        step: step size ``h > 0``.
-        friction: ``gamma >= 0`` (``math.inf`` allowed: no momentum memory).
+        lr: SGD's learning rate ``lr > 0`` (required unless ``step`` is given).
+        momentum: SGD's momentum ``mu`` in ``[0, 1]`` (default ``0.9``; only
+            with ``lr``).
+        step: the integrator's step ``h > 0``, instead of ``lr``.
+        friction: ``gamma >= 0`` (``math.inf`` allowed: no momentum memory;
+            default ``1.0``; only with ``step``), instead of ``momentum``.
         temperature: ``T >= 0``.
         projection: ``"rattle"`` (SHAKE/RATTLE A-steps) or ``"geodesic"``
             (the exact geodesic flow: g-BAOAB).
@@ -114,8 +152,10 @@ class Langevin(ConstrainedOptimizer):
             eagerly as a whole.
 
     Raises:
-        ValueError: at construction, for a non-positive or NaN step,
-            negative friction or temperature, unknown projection, ...
+        ValueError: at construction, for a non-positive or NaN lr or step,
+            a momentum outside [0, 1], negative friction or temperature,
+            unknown projection, neither or both of ``lr`` and ``step``,
+            ``momentum`` with ``step`` or ``friction`` with ``lr``, ...
         IntegrationError: from ``step()``, if a gradient is not finite or a
             projection fails; nothing is changed then.
 
@@ -131,8 +171,11 @@ class Langevin(ConstrainedOptimizer):
     def __init__(
         self,
         params: Iterable[Any],
-        step: float,
-        friction: float = 1.0,
+        lr: float | None = None,
+        momentum: float | None = None,
+        *,
+        step: float | None = None,
+        friction: float | None = None,
         temperature: float = 0.0,
         projection: str = "rattle",
         seed: int = 0,
@@ -143,9 +186,10 @@ class Langevin(ConstrainedOptimizer):
     ) -> None:
         if compiled is not None and not isinstance(compiled, bool):
             raise ValueError(f"compiled must be None (automatic), True or False, got {compiled!r}")
-        defaults = dict(lr=check_positive("step", step), friction=friction, temperature=temperature,
+        lr, momentum = sgd_settings(lr, momentum, step, friction)
+        defaults = dict(lr=lr, momentum=momentum, temperature=temperature,
                         projection=projection, dataset_size=dataset_size, weight_decay=weight_decay,
-                        substeps=substeps)
+                        substeps=substeps, momentum_scale=None)
         self._validate_group(defaults)
         super().__init__(params, defaults, seed=seed)
         self.compiled = compiled
@@ -160,28 +204,25 @@ class Langevin(ConstrainedOptimizer):
         weight_decay: float = 0.0,
         **kwargs: Any,
     ) -> "Langevin":
-        r"""Build from SGD-style ``lr`` and ``momentum``.
+        r"""Build from SGD-style ``lr`` and ``momentum``: the same as
+        ``cls(params, lr, momentum, temperature=..., weight_decay=..., **kwargs)``
+        (kept for old code; the constructor takes ``lr`` and ``momentum`` itself).
 
         ``h = sqrt(2 lr / (1 + momentum))``, ``gamma = -ln(momentum) / h``
         (``momentum = 0`` gives ``gamma = inf``).  At ``T = 0`` and without
         constraints the trajectory equals
-        ``torch.optim.SGD(params, lr, momentum=momentum, weight_decay=weight_decay)``.
-        A scheduler then scales ``h``; ``lr`` scales as ``h^2``.
+        ``torch.optim.SGD(params, lr, momentum=momentum, weight_decay=weight_decay)``,
+        under schedulers too.
         """
-        lr = check_positive("lr", lr)
-        try:
-            mu = float(momentum)
-        except (TypeError, ValueError):
-            raise ValueError(f"momentum must be a real number in [0, 1], got {momentum!r}") from None
-        if not 0.0 <= mu <= 1.0:
-            raise ValueError(f"momentum must be in [0, 1], got {momentum!r}")
-        h = math.sqrt(2.0 * lr / (1.0 + mu))
-        friction = math.inf if mu == 0.0 else -math.log(mu) / h
-        return cls(params, step=h, friction=friction, temperature=temperature,
-                   weight_decay=weight_decay, **kwargs)
+        return cls(params, lr, momentum, temperature=temperature, weight_decay=weight_decay, **kwargs)
+
+    def _convert_group(self, param_group: dict[str, Any]) -> dict[str, Any]:
+        """``step``/``friction`` in a group become ``lr``/``momentum``."""
+        return physics_group_to_sgd(param_group, self.defaults)
 
     def _validate_group(self, group: dict[str, Any]) -> None:
-        group["friction"] = check_friction(group["friction"])
+        group["lr"] = check_lr(group["lr"])
+        group["momentum"] = check_momentum(group["momentum"])
         group["temperature"] = check_temperature(group["temperature"])
         group["dataset_size"] = check_dataset_size(group["dataset_size"])
         group["weight_decay"] = _check_weight_decay(group["weight_decay"])
@@ -190,17 +231,57 @@ class Langevin(ConstrainedOptimizer):
         substeps = group["substeps"]
         if isinstance(substeps, bool) or not isinstance(substeps, int) or substeps < 1:
             raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
+        group.setdefault("momentum_scale", None)
+
+    def _follow_settings(self) -> Callable[[], None]:
+        """Rescale the stored momenta of every group whose ``lr`` or ``momentum``
+        changed since its last step by ``(mu' h') / (mu h)`` (class docstring:
+        SGD keeps its buffer ``P / (mu h)``).  New tensors are stored (nothing is
+        written in place); returns the function that undoes it (for a failed step)."""
+        undo: list[tuple[dict[str, Any], Any, list[tuple[Tensor, Tensor]]]] = []
+        for group in self.param_groups:
+            if not group["lr"] > 0:
+                continue  # nothing moves; the base step reports a negative lr
+            h, _ = integrator_step_and_friction(group)
+            scale = group["momentum"] * h
+            old = group.get("momentum_scale")
+            if old == scale:
+                continue
+            saved: list[tuple[Tensor, Tensor]] = []
+            if old:  # None: no step yet; 0: the last step kept no momentum (mu = 0)
+                factor = scale / old
+                for p in group["params"]:
+                    state = self.state.get(p)
+                    momentum = state.get("momentum") if state else None
+                    if momentum is not None:
+                        saved.append((p, momentum))
+                        state["momentum"] = momentum * factor
+            undo.append((group, old, saved))
+            group["momentum_scale"] = scale
+
+        def restore() -> None:
+            for group, old, saved in undo:
+                group["momentum_scale"] = old
+                for p, momentum in saved:
+                    self.state[p]["momentum"] = momentum
+
+        return restore
 
     def _take_step(self) -> None:
         """The compiled path (unless ``compiled=False``), else the fast path
         (:mod:`holonomic.dynamics.fast`) for the BAOAB scheme, falling back to
         the plain path when a check fails."""
-        if self._reference or self.scheme is not BAOAB or type(self)._update is not Langevin._update:
-            self._reference_step()
-        elif self._use_compiled() and compiled_baoab_step(self):
-            return
-        elif not fast_baoab_step(self):
-            self._reference_step()
+        restore = self._follow_settings()
+        try:
+            if self._reference or self.scheme is not BAOAB or type(self)._update is not Langevin._update:
+                self._reference_step()
+            elif self._use_compiled() and compiled_baoab_step(self):
+                return
+            elif not fast_baoab_step(self):
+                self._reference_step()
+        except BaseException:
+            restore()  # a failed step changes nothing, the momenta and their settings included
+            raise
 
     def _use_compiled(self) -> bool:
         """Not switched off, not failed to compile, and ``force`` not
@@ -213,7 +294,8 @@ class Langevin(ConstrainedOptimizer):
         momentum = state.get("momentum")
         if momentum is None:
             momentum = torch.zeros_like(p)
-        settings = Settings(step=group["lr"], friction=group["friction"], temperature=group["temperature"],
+        h, gamma = integrator_step_and_friction(group)
+        settings = Settings(step=h, friction=gamma, temperature=group["temperature"],
                             projection=group["projection"], substeps=group["substeps"])
         phase = Phase(w=p.detach(), p=momentum, ok=torch.isfinite(force).all())
         run_scheme(self.scheme, phase, force=force, geometry=geometry, settings=settings,
@@ -233,9 +315,23 @@ class OverdampedLangevin(ConstrainedOptimizer):
 
     with ``f = dataset_size * W.grad + weight_decay * W``.  Samples
     ``exp(-U/T)`` (surface measure) with weak order 1; at ``T = 0`` it is
-    projected gradient descent with learning rate ``h``.  No momentum is
-    kept.  Units and param-group keys as for :class:`Langevin`
-    (``lr``/``step``, ``temperature``, ``dataset_size``, ``weight_decay``).
+    projected gradient descent with learning rate ``h``: here ``lr = h``
+    (``torch.optim.SGD`` without momentum at ``T = 0`` and without
+    constraints; ``step`` is accepted as another name for ``lr``).  No
+    momentum is kept (no ``momentum`` key, so momentum-cycling schedulers
+    refuse it, as for any optimizer without momentum).  Units and param-group
+    keys as for :class:`Langevin` (``lr``/``step``, ``temperature``,
+    ``dataset_size``, ``weight_decay``).
+
+    Args:
+        params: parameters or param groups.
+        lr: the step ``h > 0`` (SGD's learning rate at ``T = 0``); required
+            unless ``step`` is given.
+        step: another name for ``lr``.
+        temperature: ``T >= 0``.
+        seed: seed of the integrator's own generator.
+        dataset_size: multiplies the gradient.
+        weight_decay: Gaussian prior precision for unconstrained parameters.
 
     References:
         Ciccotti, Lelievre & Vanden-Eijnden, Comm. Pure Appl. Math. 61 (2008)
@@ -248,25 +344,35 @@ class OverdampedLangevin(ConstrainedOptimizer):
     def __init__(
         self,
         params: Iterable[Any],
-        step: float,
+        lr: float | None = None,
+        *,
+        step: float | None = None,
         temperature: float = 0.0,
         seed: int = 0,
         dataset_size: float | None = None,
         weight_decay: float = 0.0,
     ) -> None:
-        defaults = dict(lr=check_positive("step", step), temperature=temperature,
+        if lr is not None and step is not None:
+            raise ValueError(f"give lr or step (the same thing here: lr = h), not both; got lr={lr!r} "
+                             f"and step={step!r}")
+        if lr is None and step is None:
+            raise ValueError("lr is required (the step h of the Euler-Maruyama scheme, e.g. lr=1e-3)")
+        defaults = dict(lr=check_lr(lr) if step is None else check_positive("step", step),
+                        temperature=temperature,
                         dataset_size=dataset_size, weight_decay=weight_decay)
         self._validate_group(defaults)
         super().__init__(params, defaults, seed=seed)
 
     def _validate_group(self, group: dict[str, Any]) -> None:
+        group["lr"] = check_lr(group["lr"])
         group["temperature"] = check_temperature(group["temperature"])
         group["dataset_size"] = check_dataset_size(group["dataset_size"])
         group["weight_decay"] = _check_weight_decay(group["weight_decay"])
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
         temperature = group["temperature"]
-        phase = overdamped_move(p.detach(), force, geometry=geometry, step=group["lr"],
+        h, _ = integrator_step_and_friction(group)  # h = lr
+        phase = overdamped_move(p.detach(), force, geometry=geometry, step=h,
                                 temperature=temperature,
                                 generator=self.generator(p.device) if temperature > 0 else None)
         return phase.w, None, phase.ok & torch.isfinite(force).all(), phase.iterations

@@ -62,6 +62,7 @@ from torch import Tensor
 from holonomic.dynamics.base import step_label
 from holonomic.dynamics.fast import _noise, _vectors
 from holonomic.dynamics.operators import ou_coefficients
+from holonomic.dynamics.settings import integrator_step_and_friction
 from holonomic.geometry import FixedNorm
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -237,7 +238,7 @@ def native_step(opt: "Langevin", items: list, fresh: dict[Tensor, Tensor]) -> tu
         tensors.append((p.grad, noise, momentum))
         names = group.get("param_names")
         key.append((p.data_ptr(), momentum.data_ptr(), noise is None, id(p), p.shape, geometry, where,
-                    tuple(names) if names else None, group["lr"], group["friction"], group["temperature"],
+                    tuple(names) if names else None, group["lr"], group["momentum"], group["temperature"],
                     group["dataset_size"], group["weight_decay"]))
     cached = opt.__dict__.get("_native_table")
     if cached is None or cached[0] != key:
@@ -269,8 +270,8 @@ def _table(items: list, momenta: list[Tensor]) -> ctypes.Array:
     gradient and noise pointers are set by the caller on every step."""
     table = (_Param * len(items))()
     for slot, (p, geometry, group, _), momentum in zip(table, items, momenta):
-        h = group["lr"]
-        decay, sigma = ou_coefficients(group["friction"], h, group["temperature"])
+        h, gamma = integrator_step_and_friction(group)
+        decay, sigma = ou_coefficients(gamma, h, group["temperature"])
         if isinstance(geometry, FixedNorm):
             view, dim = _vectors(p, geometry.over)
             rows, length = (view.shape[0], view.shape[1]) if dim == 1 else (view.shape[1], view.shape[0])

@@ -34,7 +34,6 @@ for a per-step gradient noise of standard deviation :math:`\sigma_g`.
 
 from __future__ import annotations
 
-import math
 from typing import Any, Callable, Iterable
 
 import torch
@@ -43,6 +42,7 @@ from torch import Tensor
 from holonomic.dynamics.base import ConstrainedOptimizer
 from holonomic.dynamics.langevin import Langevin
 from holonomic.dynamics.operators import Phase, Settings, run_scheme
+from holonomic.dynamics.settings import integrator_step_and_friction, sgd_settings
 from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of
 from holonomic.geometry.base import check_positive
 
@@ -107,9 +107,18 @@ class AdaptiveLangevin(Langevin):
         xi <- xi + (h/2)/m (sum |P|^2 / (N_f T) - 1)                           D
         for each parameter:   W, P <- drift(W, P, h/2)                         A
 
-    :math:`\xi` starts at ``friction`` (= A). A subclass of :class:`holonomic.Langevin`
-    (note the argument order: ``temperature`` comes before ``friction`` and is required);
-    the inherited ``from_sgd`` maps ``momentum`` to ``friction`` (A) the same way. As in
+    Settings as for :class:`holonomic.Langevin` (same argument order): ``lr`` and
+    ``momentum`` with ``torch.optim.SGD``'s meaning, or the integrator's ``step`` and
+    ``friction``; ``h = sqrt(2 lr / (1 + momentum))`` and the noise friction
+    ``A = -ln(momentum) / h`` (:func:`holonomic.dynamics.settings.integrator_step_and_friction`,
+    readable with :meth:`step_and_friction`), so a scheduler that changes ``lr`` changes
+    ``h`` as ``sqrt(lr)`` and ``A`` as ``1/sqrt(lr)``. :math:`\xi` starts at ``A``
+    implied by the group's settings when the group is added; afterwards it evolves by
+    itself (a later change of ``lr`` or ``momentum`` changes ``A`` and ``h``, not
+    :math:`\xi`). Unlike :class:`holonomic.Langevin`, the stored momenta are not
+    rescaled when ``lr`` or ``momentum`` change (there is no SGD equivalent at
+    ``T > 0``: they stay the physical momenta). ``momentum`` must be > 0 (``A`` finite).
+    ``temperature`` defaults to 1 (use :class:`holonomic.Langevin` for ``T = 0``). As in
     :class:`holonomic.Langevin`, ``state[p]["momentum"]`` holds P before the closing half kick; ``f = dataset_size *
     grad + weight_decay * W``; the temperature is in the units of the loss (see
     :class:`holonomic.Langevin` for ``dataset_size``). The thermostat frictions (one 0-d
@@ -121,12 +130,15 @@ class AdaptiveLangevin(Langevin):
 
     Args:
         params: parameters or param groups.
-        step: step size ``h > 0`` (stored as group ``"lr"`` so schedulers scale it).
-        temperature: ``T > 0`` (the thermostat targets :math:`|P|^2 = N_f T`; use
-            :class:`holonomic.Langevin` for ``T = 0`` optimisation).
-        friction: ``A >= 0``, friction of the injected noise and initial :math:`\xi`.
-            ``A = 0`` gives a pure Nose-Hoover thermostat driven by the gradient noise alone
-            (not ergodic without that noise).
+        lr: SGD's learning rate ``> 0`` (required unless ``step`` is given).
+        momentum: SGD's momentum in ``(0, 1]`` (default ``0.9``; only with ``lr``).
+        step: the integrator's step ``h > 0``, instead of ``lr``.
+        friction: ``A >= 0`` (finite), friction of the injected noise and initial
+            :math:`\xi` (default ``1.0``; only with ``step``), instead of ``momentum``.
+            ``A = 0`` (``momentum = 1``) gives a pure Nose-Hoover thermostat driven by the
+            gradient noise alone (not ergodic without that noise).
+        temperature: ``T > 0`` (default 1; the thermostat targets :math:`|P|^2 = N_f T`;
+            use :class:`holonomic.Langevin` for ``T = 0`` optimisation).
         thermostat_mass: ``m > 0``; larger is slower and smoother.
         projection: ``"rattle"`` or ``"geodesic"``, as for :class:`holonomic.Langevin`.
         seed: seed of the integrator's own generator.
@@ -149,9 +161,12 @@ class AdaptiveLangevin(Langevin):
     def __init__(
         self,
         params: Iterable[Any],
-        step: float,
-        temperature: float,
-        friction: float = 1.0,
+        lr: float | None = None,
+        momentum: float | None = None,
+        *,
+        step: float | None = None,
+        friction: float | None = None,
+        temperature: float = 1.0,
         thermostat_mass: float = 1.0,
         projection: str = "rattle",
         seed: int = 0,
@@ -159,8 +174,9 @@ class AdaptiveLangevin(Langevin):
         weight_decay: float = 0.0,
         substeps: int = 1,
     ) -> None:
-        defaults = dict(lr=check_positive("step", step), temperature=temperature,
-                        friction=friction, thermostat_mass=thermostat_mass,
+        lr, momentum = sgd_settings(lr, momentum, step, friction)
+        defaults = dict(lr=lr, momentum=momentum, temperature=temperature,
+                        thermostat_mass=thermostat_mass,
                         projection=projection, dataset_size=dataset_size,
                         weight_decay=weight_decay, substeps=substeps)
         self._validate_group(defaults)
@@ -172,22 +188,28 @@ class AdaptiveLangevin(Langevin):
 
     # -- groups ------------------------------------------------------------------------
     def _validate_group(self, group: dict[str, Any]) -> None:
-        super()._validate_group(group)  # Langevin's checks (friction, projection, ...)
+        super()._validate_group(group)  # Langevin's checks (lr, momentum, projection, ...)
         group["temperature"] = check_positive("temperature", group["temperature"])
-        if math.isinf(group["friction"]):
-            raise ValueError("friction must be finite for AdaptiveLangevin (it is the initial "
-                             f"thermostat friction), got {group['friction']!r}")
+        if group["momentum"] == 0.0:
+            raise ValueError("momentum must be > 0 for AdaptiveLangevin (momentum 0 is an "
+                             "infinite friction; the friction is the initial thermostat "
+                             "friction and must be finite), got 0.0 (or friction=inf)")
         group["thermostat_mass"] = check_positive("thermostat_mass", group["thermostat_mass"])
 
     def add_param_group(self, param_group: dict[str, Any]) -> None:
         super().add_param_group(param_group)
         group = self.param_groups[-1]
         device = group["params"][0].device if group["params"] else torch.device("cpu")
-        self._xi.append(torch.tensor(group["friction"], dtype=torch.float64, device=device))
+        _, friction = integrator_step_and_friction(group)
+        self._xi.append(torch.tensor(friction, dtype=torch.float64, device=device))
 
     def thermostat_friction(self) -> list[float]:
         """Current thermostat friction :math:`\\xi` of each param group (host sync)."""
         return [float(x) for x in self._xi]
+
+    def _follow_settings(self) -> Callable[[], None]:
+        """No rescaling of the momenta when lr or momentum change (class docstring)."""
+        return lambda: None
 
     # -- checkpointing -------------------------------------------------------------------
     def state_dict(self) -> dict[str, Any]:
@@ -222,9 +244,9 @@ class AdaptiveLangevin(Langevin):
         xi_half: list[Tensor | None] = [None] * len(self.param_groups)
         dof = [0] * len(self.param_groups)
         for g_index, group in enumerate(self.param_groups):
-            h = group["lr"]
-            if not h > 0:  # h == 0 skips the group; h < 0 is reported by the base step()
+            if not group["lr"] > 0:  # lr == 0 skips the group; lr < 0 is reported by the base step()
                 continue
+            h = self._settings(group).step
             if not group["temperature"] > 0:
                 raise ValueError(f"param group {g_index}: AdaptiveLangevin needs temperature "
                                  f"> 0, got {group['temperature']!r}; use Langevin for T = 0")
@@ -253,7 +275,8 @@ class AdaptiveLangevin(Langevin):
 
     @staticmethod
     def _settings(group: dict[str, Any]) -> Settings:
-        return Settings(step=group["lr"], friction=group["friction"],
+        h, friction = integrator_step_and_friction(group)
+        return Settings(step=h, friction=friction,
                         temperature=group["temperature"], projection=group["projection"],
                         substeps=group["substeps"])
 
@@ -298,5 +321,6 @@ class AdaptiveLangevin(Langevin):
                 self._xi[g_index] = update_thermostat_friction(
                     scratch["xi_half"][g_index], scratch["kinetic"][g_index],
                     dof=scratch["dof"][g_index], temperature=group["temperature"],
-                    thermostat_mass=group["thermostat_mass"], duration=0.5 * group["lr"])
+                    thermostat_mass=group["thermostat_mass"],
+                    duration=0.5 * integrator_step_and_friction(group)[0])
         return loss
