@@ -73,7 +73,6 @@ def test_grid_search_over_temperature():
     assert search.best_params_["optimizer__temperature"] in (0.0, 1e-4)
 
 
-@pytest.mark.xfail(strict=True, reason="needs item 2 (copies)")
 def test_pickled_net_continues_training():
     x, y = _data()
     net = _net(optimizer__temperature=1e-4).fit(x, y)

@@ -392,6 +392,9 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
                     raise ValueError(f"param group {g_index}: 'lr' must be a real number, got {h!r}") from None
                 if not h >= 0 or math.isinf(h):
                     raise ValueError(f"param group {g_index}: 'lr' must be >= 0 and finite, got {h!r}")
+                # lr = 0 is a valid state (a schedule that decays to zero: nothing moves),
+                # though the constructor refuses it: validate the other settings with lr 1.
+                settings["lr"] = h if h > 0 else 1.0
             try:
                 self._validate_group(settings)
             except (ValueError, KeyError) as exc:
