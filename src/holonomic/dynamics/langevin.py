@@ -112,12 +112,37 @@ class Langevin(ConstrainedOptimizer):
             the eager fast path.  A step with any parameter the kernels do
             not cover (orthonormal, geodesic or substepped groups, ...) runs
             eagerly as a whole.
+        retry_substeps: what a step does when a projection has no solution
+            (SHAKE finds no point of the set along the normal: the drift
+            ``(h/2) |P|`` of a row exceeds its radius, typically at a large
+            step or temperature).  ``None`` (default): the step raises
+            :class:`IntegrationError` and changes nothing.  An integer
+            ``K >= 2``: the step is retried inside the same ``step()`` call,
+            from the same state and with the same noise (the failed attempt
+            changed nothing, generators included), with the failing group's
+            A-steps split into ``k`` times more substeps, ``k = 2, 4, 8, ...``
+            capped at ``K``; a retried step with factor ``k`` equals the step
+            of an optimizer built with ``substeps * k`` for that group.  Each
+            drift then moves ``k`` times less, so SHAKE has a solution where
+            ``(h / 2k) |P|`` is below the radius; the cost is ``k`` times the
+            A-step work for that step only.  ``optimizer.last_info.retried_substeps``
+            gives ``{group: k}`` for the last step and ``optimizer.retried_steps``
+            (saved in ``state_dict``) counts the retried steps.  If ``k = K``
+            still fails, the step raises :class:`IntegrationError` saying so,
+            with nothing changed.  Non-finite gradients are never retried.
+            A retried step runs on the eager path.
 
     Raises:
         ValueError: at construction, for a non-positive or NaN step,
             negative friction or temperature, unknown projection, ...
         IntegrationError: from ``step()``, if a gradient is not finite or a
-            projection fails; nothing is changed then.
+            projection fails (after the retries of ``retry_substeps``);
+            nothing is changed then.
+
+    ``torch.compile`` does not trace ``step()`` (a transaction that reads its
+    failure flags on the host): ``torch.compile(optimizer.step)`` or a compiled
+    training function runs the step eagerly, with the same result, and
+    ``fullgraph=True`` raises naming that reason.  Compile the model instead.
 
     References:
         Leimkuhler & Matthews, Proc. R. Soc. A 472 (2016) 20160138;
@@ -140,6 +165,7 @@ class Langevin(ConstrainedOptimizer):
         weight_decay: float = 0.0,
         substeps: int = 1,
         compiled: bool | None = None,
+        retry_substeps: int | None = None,
     ) -> None:
         if compiled is not None and not isinstance(compiled, bool):
             raise ValueError(f"compiled must be None (automatic), True or False, got {compiled!r}")
@@ -147,7 +173,7 @@ class Langevin(ConstrainedOptimizer):
                         projection=projection, dataset_size=dataset_size, weight_decay=weight_decay,
                         substeps=substeps)
         self._validate_group(defaults)
-        super().__init__(params, defaults, seed=seed)
+        super().__init__(params, defaults, seed=seed, retry_substeps=retry_substeps)
         self.compiled = compiled
 
     @classmethod
@@ -235,7 +261,25 @@ class OverdampedLangevin(ConstrainedOptimizer):
     ``exp(-U/T)`` (surface measure) with weak order 1; at ``T = 0`` it is
     projected gradient descent with learning rate ``h``.  No momentum is
     kept.  Units and param-group keys as for :class:`Langevin`
-    (``lr``/``step``, ``temperature``, ``dataset_size``, ``weight_decay``).
+    (``lr``/``step``, ``temperature``, ``dataset_size``, ``weight_decay``,
+    ``substeps``).
+
+    **Substeps.**  With ``substeps = K`` the move is split into ``K``
+    projected moves of ``h/K`` with the same force ``f(W)`` (one gradient per
+    step) and the Brownian increment ``B = sqrt(2 T h) xi`` split along its
+    bridge, so that the ``K`` increments sum to the same ``B``::
+
+        W_0 = W;  B = sqrt(2 T h) xi          (the draw of K = 1)
+        for j = 0 .. K-1 (m = K - j increments left):
+            dB_j = B / m + sqrt(2 T (h/K) (m-1)/m) z_j    (z_j ~ N(0, I), drawn in order; dB = B at j = K-1)
+            B   <- B - dB_j
+            W_{j+1} = SHAKE(W_j, W_j + Pi_{W_j}(-(h/K) f + dB_j))
+
+    Each ``dB_j`` has variance ``2 T h/K`` per coordinate; ``K = 1`` is the
+    scheme above, bit for bit.  ``retry_substeps`` (as for
+    :class:`Langevin`) retries a step whose projection failed with ``k``
+    times more substeps, ``k = 2, 4, ...``: the same first draw ``xi``, so
+    the retried step refines the Brownian path of the failed one.
 
     References:
         Ciccotti, Lelievre & Vanden-Eijnden, Comm. Pure Appl. Math. 61 (2008)
@@ -251,20 +295,25 @@ class OverdampedLangevin(ConstrainedOptimizer):
         seed: int = 0,
         dataset_size: float | None = None,
         weight_decay: float = 0.0,
+        substeps: int = 1,
+        retry_substeps: int | None = None,
     ) -> None:
         defaults = dict(lr=check_positive("step", step), temperature=temperature,
-                        dataset_size=dataset_size, weight_decay=weight_decay)
+                        dataset_size=dataset_size, weight_decay=weight_decay, substeps=substeps)
         self._validate_group(defaults)
-        super().__init__(params, defaults, seed=seed)
+        super().__init__(params, defaults, seed=seed, retry_substeps=retry_substeps)
 
     def _validate_group(self, group: dict[str, Any]) -> None:
         group["temperature"] = check_temperature(group["temperature"])
         group["dataset_size"] = check_dataset_size(group["dataset_size"])
         group["weight_decay"] = _check_weight_decay(group["weight_decay"])
+        substeps = group.setdefault("substeps", 1)
+        if isinstance(substeps, bool) or not isinstance(substeps, int) or substeps < 1:
+            raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
         temperature = group["temperature"]
         phase = overdamped_move(p.detach(), force, geometry=geometry, step=group["lr"],
-                                temperature=temperature,
+                                temperature=temperature, substeps=group.get("substeps", 1),
                                 generator=self.generator(p.device) if temperature > 0 else None)
         return phase.w, None, phase.ok & torch.isfinite(force).all(), phase.iterations
