@@ -339,7 +339,7 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
                             f"{g} (retry_substeps={limit}); a larger retry_substeps or a smaller step may "
                             "help.", parameter=err.parameter, reason=err.reason, group=g) from err
                     group = self.param_groups[g]
-                    original.setdefault(g, group["substeps"])
+                    original.setdefault(g, group.get("substeps", 1))
                     factors[g] = min(2 * k, limit)
                     group["substeps"] = original[g] * factors[g]
         finally:
