@@ -32,12 +32,14 @@ class IntegrationError(RuntimeError):
         parameter: readable name of the offending parameter.
         reason: ``"non-finite gradient"``, ``"projection failed"`` or
             ``"non-finite result"``.
+        group: index of the param group of the parameter (``None`` if unknown).
     """
 
-    def __init__(self, message: str, *, parameter: str, reason: str) -> None:
+    def __init__(self, message: str, *, parameter: str, reason: str, group: int | None = None) -> None:
         super().__init__(message)
         self.parameter = parameter
         self.reason = reason
+        self.group = group
 
 
 @dataclass(frozen=True)
@@ -58,16 +60,23 @@ class StepInfo:
     ``parameters`` is the tuple of :class:`ParameterStepInfo`, or a function
     that builds it; it is then built on first access (the compiled step
     defers this, so that a step pays nothing for diagnostics nobody reads).
+
+    ``retried_substeps`` maps the index of each param group whose step was
+    retried with more substeps (``retry_substeps``, see
+    :class:`holonomic.Langevin`) to the factor ``k`` that succeeded: that
+    group's A-steps ran with ``k`` times its ``substeps``.  Empty when the
+    step succeeded at the first attempt.
     """
 
-    __slots__ = ("_parameters", "_build")
+    __slots__ = ("_parameters", "_build", "retried_substeps")
 
-    def __init__(self, parameters: tuple[ParameterStepInfo, ...] | Callable[[], tuple[ParameterStepInfo, ...]]
-                 ) -> None:
+    def __init__(self, parameters: tuple[ParameterStepInfo, ...] | Callable[[], tuple[ParameterStepInfo, ...]],
+                 retried_substeps: dict[int, int] | None = None) -> None:
         if callable(parameters):
             self._parameters, self._build = None, parameters
         else:
             self._parameters, self._build = tuple(parameters), None
+        self.retried_substeps: dict[int, int] = dict(retried_substeps or {})
 
     @property
     def parameters(self) -> tuple[ParameterStepInfo, ...]:
@@ -76,16 +85,18 @@ class StepInfo:
         return self._parameters
 
     def __eq__(self, other: object) -> bool:
-        return isinstance(other, StepInfo) and self.parameters == other.parameters
+        return (isinstance(other, StepInfo) and self.parameters == other.parameters
+                and self.retried_substeps == other.retried_substeps)
 
     def __hash__(self) -> int:
-        return hash(self.parameters)
+        return hash((self.parameters, tuple(sorted(self.retried_substeps.items()))))
 
     def __repr__(self) -> str:
-        return f"StepInfo(parameters={self.parameters!r})"
+        retried = f", retried_substeps={self.retried_substeps!r}" if self.retried_substeps else ""
+        return f"StepInfo(parameters={self.parameters!r}{retried})"
 
     def __reduce__(self) -> tuple[Any, ...]:  # pickles the built tuple, not the function
-        return (StepInfo, (self.parameters,))
+        return (StepInfo, (self.parameters, self.retried_substeps))
 
 
 @dataclass
@@ -131,6 +142,22 @@ def check_dataset_size(value: Any) -> float | None:
     return check_positive("dataset_size", value)
 
 
+#: Why ``step()`` is excluded from ``torch.compile`` tracing (``torch.compiler.disable``).
+NOT_TRACED = ("a holonomic step is a transaction: it reads its failure flags on the host (one "
+              "synchronisation) before it writes anything, and may retry; it runs eagerly. Compile "
+              "the model (forward and backward), not optimizer.step()")
+
+
+def check_retry_substeps(value: Any) -> int | None:
+    """``None`` (no retry) or the largest substep factor of a retried step, an int >= 2."""
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, int) or value < 2:
+        raise ValueError("retry_substeps must be None (a failed projection raises) or an integer >= 2 "
+                         f"(the largest factor by which a failed step's substeps are multiplied), got {value!r}")
+    return value
+
+
 class ConstrainedOptimizer(torch.optim.Optimizer):
     """Bookkeeping common to all holonomic integrators (see module docstring).
 
@@ -140,10 +167,20 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
     (:meth:`step_and_friction`).
     """
 
-    def __init__(self, params: Iterable[Any], defaults: dict[str, Any], *, seed: int = 0) -> None:
+    def __init__(self, params: Iterable[Any], defaults: dict[str, Any], *, seed: int = 0,
+                 retry_substeps: int | None = None) -> None:
         if isinstance(seed, bool) or not isinstance(seed, int):
             raise ValueError(f"seed must be an int, got {seed!r}")
+        retry_substeps = check_retry_substeps(retry_substeps)
+        if retry_substeps is not None and "substeps" not in defaults:
+            raise ValueError(f"retry_substeps: {type(self).__name__} has no 'substeps' setting to "
+                             f"multiply; use retry_substeps=None, got {retry_substeps!r}")
         self.seed = seed
+        #: Largest factor by which a step whose projection failed is retried
+        #: with more substeps (``None``: the step raises at once).
+        self.retry_substeps = retry_substeps
+        #: Number of steps that succeeded only after a retry with more substeps.
+        self.retried_steps = 0
         self._generators: dict[str, torch.Generator] = {}
         self.last_info: StepInfo | None = None
         super().__init__(params, defaults)
@@ -206,6 +243,7 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         sd["integrator"] = type(self).__name__
         sd["seed"] = self.seed
         sd["generators"] = {k: g.get_state() for k, g in self._generators.items()}
+        sd["retried_steps"] = getattr(self, "retried_steps", 0)
         return sd
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
@@ -224,8 +262,10 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         state_dict.pop("integrator", None)
         seed = state_dict.pop("seed", self.seed)
         generators = state_dict.pop("generators", {})
+        retried_steps = int(state_dict.pop("retried_steps", 0))
         super().load_state_dict(state_dict)
         self.seed = int(seed)
+        self.retried_steps = retried_steps
         self._generators = {}
         for key, gen_state in generators.items():
             self.generator(torch.device(key)).set_state(gen_state.to("cpu", torch.uint8))
@@ -250,7 +290,8 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
             raise ValueError(f"{me}.load_state_dict: the state dict has {len(saved_groups)} param group(s), "
                              f"this optimizer {len(self.param_groups)}; build the optimizer with the same "
                              "param groups as the one that was saved")
-        required = set(self.defaults) - {"params", "param_names"}
+        # torch adds "differentiable" to the defaults when it loads a state dict
+        required = set(self.defaults) - {"params", "param_names", "differentiable"}
         id_map: dict[Any, tuple[Tensor, str, int]] = {}
         for g_index, (group, saved) in enumerate(zip(self.param_groups, saved_groups)):
             if len(saved["params"]) != len(group["params"]):
@@ -346,15 +387,25 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         """Return (new position, new momentum or None, ok flag, iterations)."""
         raise NotImplementedError
 
+    @torch.compiler.disable(reason=NOT_TRACED)
     @torch.no_grad()
     def step(self, closure: Callable[[], Tensor] | None = None) -> Tensor | None:  # type: ignore[override]
         """Take one step using the gradients in ``.grad``.
+
+        With ``retry_substeps`` set, a step whose projection failed is
+        retried inside this call with more substeps (see
+        :meth:`_take_step_with_retries`); schedulers and hooks see one step.
 
         Raises:
             IntegrationError: a non-finite gradient or a failed projection;
                 nothing (weights, momenta, generator states) is changed.
             ValueError: a parameter was replaced in its module after this
                 optimizer was built (nothing is changed).
+
+        ``torch.compile`` does not trace a step (:data:`NOT_TRACED`): under
+        ``torch.compile(optimizer.step)`` or a compiled training function the
+        step runs eagerly (a graph break), with the same result; with
+        ``fullgraph=True`` torch raises, naming that reason.
         """
         check_not_replaced(self.param_groups)
         if not getattr(self, "_first_step_checked", False):
@@ -367,7 +418,7 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
             with torch.enable_grad():
                 loss = closure()
         self._check_step_inputs()
-        self._take_step()
+        self._take_step_with_retries()
         return loss
 
     def _check_step_inputs(self) -> None:
@@ -419,6 +470,63 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
         that fall back to :meth:`_reference_step`)."""
         self._reference_step()
 
+    def _take_step_with_retries(self) -> None:
+        r""":meth:`_take_step`, retried with more substeps where a projection failed.
+
+        Without ``retry_substeps`` this is :meth:`_take_step`.  With it, when
+        the step raises :class:`IntegrationError` with reason
+        ``"projection failed"`` in param group ``g`` (never for a non-finite
+        gradient), the transaction has changed nothing (weights, momenta,
+        generator states), so the step is taken again from the same state
+        with the same noise, with group ``g``'s ``substeps`` multiplied by
+        ``k = 2, 4, 8, ...`` (doubling, capped at ``retry_substeps``)::
+
+            k_g = 1 for every group
+            loop:  take the step with substeps_g * k_g
+                   success -> done
+                   projection failed in group g:
+                       k_g = retry_substeps -> raise (saying so)
+                       else k_g <- min(2 k_g, retry_substeps)
+
+        A retried step with factor ``k`` is exactly the step that an optimizer
+        built with ``substeps * k`` for that group would take from the same
+        state and generator state.  The groups' ``substeps`` are restored
+        afterwards; ``last_info.retried_substeps`` records ``{g: k_g}`` and
+        ``retried_steps`` counts the steps that needed a retry.
+        """
+        limit = getattr(self, "retry_substeps", None)
+        if limit is None:
+            self._take_step()
+            return
+        factors: dict[int, int] = {}
+        original: dict[int, int] = {}
+        try:
+            while True:
+                try:
+                    self._take_step()
+                    break
+                except IntegrationError as err:
+                    g = err.group
+                    if err.reason != "projection failed" or g is None:
+                        raise
+                    k = factors.get(g, 1)
+                    if k >= limit:
+                        raise IntegrationError(
+                            f"{err} The step was retried with up to {k} times more substeps in param group "
+                            f"{g} (retry_substeps={limit}); a larger retry_substeps or a smaller step may "
+                            "help.", parameter=err.parameter, reason=err.reason, group=g) from err
+                    group = self.param_groups[g]
+                    original.setdefault(g, group.get("substeps", 1))
+                    factors[g] = min(2 * k, limit)
+                    group["substeps"] = original[g] * factors[g]
+        finally:
+            for g, substeps in original.items():
+                self.param_groups[g]["substeps"] = substeps
+        if factors:
+            self.retried_steps = getattr(self, "retried_steps", 0) + 1
+            if self.last_info is not None:
+                self.last_info.retried_substeps = dict(factors)
+
     def _reference_step(self) -> None:
         """The plain path: one :meth:`_update` per parameter, then one commit."""
         saved_generators = {k: g.get_state() for k, g in self._generators.items()}
@@ -454,19 +562,21 @@ class ConstrainedOptimizer(torch.optim.Optimizer):
             for key in list(self._generators):
                 if key not in saved_generators:
                     del self._generators[key]
-            for u, (grad_ok, ok) in zip(pending, flags.tolist()):
+            flags_list = flags.tolist()
+            for u, (grad_ok, ok) in zip(pending, flags_list):  # non-finite gradients first: never retried
                 if not grad_ok:
                     raise IntegrationError(
                         f"non-finite gradient in {u.label} (param group {u.group}); nothing was "
                         "changed. Check the loss for NaN/inf, or lower the step or the data scale.",
-                        parameter=u.label, reason="non-finite gradient")
+                        parameter=u.label, reason="non-finite gradient", group=u.group)
+            for u, (grad_ok, ok) in zip(pending, flags_list):
                 if not ok:
                     raise IntegrationError(
                         f"the projection back onto the constraint set of {u.label} (param group "
                         f"{u.group}, {u.geometry!r}) failed or gave a non-finite value after "
                         f"{u.iterations} iterations; nothing was changed. Use a smaller step "
-                        "(a lower 'lr'), a lower temperature, or projection='geodesic'.",
-                        parameter=u.label, reason="projection failed")
+                        "(a lower 'lr'), a lower temperature, projection='geodesic' or retry_substeps.",
+                        parameter=u.label, reason="projection failed", group=u.group)
         infos = []
         for u in pending:
             u.param.copy_(u.position)

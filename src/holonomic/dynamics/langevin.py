@@ -150,6 +150,25 @@ class Langevin(ConstrainedOptimizer):
             the eager fast path.  A step with any parameter the kernels do
             not cover (orthonormal, geodesic or substepped groups, ...) runs
             eagerly as a whole.
+        retry_substeps: what a step does when a projection has no solution
+            (SHAKE finds no point of the set along the normal: the drift
+            ``(h/2) |P|`` of a row exceeds its radius, typically at a large
+            step or temperature).  ``None`` (default): the step raises
+            :class:`IntegrationError` and changes nothing.  An integer
+            ``K >= 2``: the step is retried inside the same ``step()`` call,
+            from the same state and with the same noise (the failed attempt
+            changed nothing, generators included), with the failing group's
+            A-steps split into ``k`` times more substeps, ``k = 2, 4, 8, ...``
+            capped at ``K``; a retried step with factor ``k`` equals the step
+            of an optimizer built with ``substeps * k`` for that group.  Each
+            drift then moves ``k`` times less, so SHAKE has a solution where
+            ``(h / 2k) |P|`` is below the radius; the cost is ``k`` times the
+            A-step work for that step only.  ``optimizer.last_info.retried_substeps``
+            gives ``{group: k}`` for the last step and ``optimizer.retried_steps``
+            (saved in ``state_dict``) counts the retried steps.  If ``k = K``
+            still fails, the step raises :class:`IntegrationError` saying so,
+            with nothing changed.  Non-finite gradients are never retried.
+            A retried step runs on the eager path.
 
     Raises:
         ValueError: at construction, for a non-positive or NaN lr or step,
@@ -157,7 +176,13 @@ class Langevin(ConstrainedOptimizer):
             unknown projection, neither or both of ``lr`` and ``step``,
             ``momentum`` with ``step`` or ``friction`` with ``lr``, ...
         IntegrationError: from ``step()``, if a gradient is not finite or a
-            projection fails; nothing is changed then.
+            projection fails (after the retries of ``retry_substeps``);
+            nothing is changed then.
+
+    ``torch.compile`` does not trace ``step()`` (a transaction that reads its
+    failure flags on the host): ``torch.compile(optimizer.step)`` or a compiled
+    training function runs the step eagerly, with the same result, and
+    ``fullgraph=True`` raises naming that reason.  Compile the model instead.
 
     References:
         Leimkuhler & Matthews, Proc. R. Soc. A 472 (2016) 20160138;
@@ -183,6 +208,7 @@ class Langevin(ConstrainedOptimizer):
         weight_decay: float = 0.0,
         substeps: int = 1,
         compiled: bool | None = None,
+        retry_substeps: int | None = None,
     ) -> None:
         if compiled is not None and not isinstance(compiled, bool):
             raise ValueError(f"compiled must be None (automatic), True or False, got {compiled!r}")
@@ -191,7 +217,7 @@ class Langevin(ConstrainedOptimizer):
                         projection=projection, dataset_size=dataset_size, weight_decay=weight_decay,
                         substeps=substeps, momentum_scale=None)
         self._validate_group(defaults)
-        super().__init__(params, defaults, seed=seed)
+        super().__init__(params, defaults, seed=seed, retry_substeps=retry_substeps)
         self.compiled = compiled
 
     @classmethod
@@ -321,7 +347,24 @@ class OverdampedLangevin(ConstrainedOptimizer):
     momentum is kept (no ``momentum`` key, so momentum-cycling schedulers
     refuse it, as for any optimizer without momentum).  Units and param-group
     keys as for :class:`Langevin` (``lr``/``step``, ``temperature``,
-    ``dataset_size``, ``weight_decay``).
+    ``dataset_size``, ``weight_decay``, ``substeps``).
+
+    **Substeps.**  With ``substeps = K`` the move is split into ``K``
+    projected moves of ``h/K`` with the same force ``f(W)`` (one gradient per
+    step) and the Brownian increment ``B = sqrt(2 T h) xi`` split along its
+    bridge, so that the ``K`` increments sum to the same ``B``::
+
+        W_0 = W;  B = sqrt(2 T h) xi          (the draw of K = 1)
+        for j = 0 .. K-1 (m = K - j increments left):
+            dB_j = B / m + sqrt(2 T (h/K) (m-1)/m) z_j    (z_j ~ N(0, I), drawn in order; dB = B at j = K-1)
+            B   <- B - dB_j
+            W_{j+1} = SHAKE(W_j, W_j + Pi_{W_j}(-(h/K) f + dB_j))
+
+    Each ``dB_j`` has variance ``2 T h/K`` per coordinate; ``K = 1`` is the
+    scheme above, bit for bit.  ``retry_substeps`` (as for
+    :class:`Langevin`) retries a step whose projection failed with ``k``
+    times more substeps, ``k = 2, 4, ...``: the same first draw ``xi``, so
+    the retried step refines the Brownian path of the failed one.
 
     Args:
         params: parameters or param groups.
@@ -351,6 +394,8 @@ class OverdampedLangevin(ConstrainedOptimizer):
         seed: int = 0,
         dataset_size: float | None = None,
         weight_decay: float = 0.0,
+        substeps: int = 1,
+        retry_substeps: int | None = None,
     ) -> None:
         if lr is not None and step is not None:
             raise ValueError(f"give lr or step (the same thing here: lr = h), not both; got lr={lr!r} "
@@ -359,20 +404,23 @@ class OverdampedLangevin(ConstrainedOptimizer):
             raise ValueError("lr is required (the step h of the Euler-Maruyama scheme, e.g. lr=1e-3)")
         defaults = dict(lr=check_lr(lr) if step is None else check_positive("step", step),
                         temperature=temperature,
-                        dataset_size=dataset_size, weight_decay=weight_decay)
+                        dataset_size=dataset_size, weight_decay=weight_decay, substeps=substeps)
         self._validate_group(defaults)
-        super().__init__(params, defaults, seed=seed)
+        super().__init__(params, defaults, seed=seed, retry_substeps=retry_substeps)
 
     def _validate_group(self, group: dict[str, Any]) -> None:
         group["lr"] = check_lr(group["lr"])
         group["temperature"] = check_temperature(group["temperature"])
         group["dataset_size"] = check_dataset_size(group["dataset_size"])
         group["weight_decay"] = _check_weight_decay(group["weight_decay"])
+        substeps = group.setdefault("substeps", 1)
+        if isinstance(substeps, bool) or not isinstance(substeps, int) or substeps < 1:
+            raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
         temperature = group["temperature"]
         h, _ = integrator_step_and_friction(group)  # h = lr
         phase = overdamped_move(p.detach(), force, geometry=geometry, step=h,
-                                temperature=temperature,
+                                temperature=temperature, substeps=group.get("substeps", 1),
                                 generator=self.generator(p.device) if temperature > 0 else None)
         return phase.w, None, phase.ok & torch.isfinite(force).all(), phase.iterations

@@ -137,15 +137,39 @@ def run_scheme(scheme: Sequence[tuple[str, float]], phase: Phase, *, force: Tens
 
 
 def overdamped_move(w: Tensor, force: Tensor, *, geometry: Constraint, step: float, temperature: float,
-                    generator: torch.Generator | None) -> Phase:
+                    generator: torch.Generator | None, substeps: int = 1) -> Phase:
     r"""Projected Euler-Maruyama step (no momentum)::
 
         y  = w + Pi_w (-h f + sqrt(2 T h) xi)
         w' = SHAKE(w, y)   (along the normal at the old point)
+
+    With ``substeps = K > 1``: ``K`` such moves of ``h/K`` with the same
+    force, the Brownian increment ``B = sqrt(2 T h) xi`` split along its
+    bridge (the ``K`` increments, each of variance ``2 T h/K``, sum to ``B``;
+    ``xi`` is drawn first, then one ``z_j`` per increment but the last)::
+
+        dB_j = B / m + sqrt(2 T (h/K) (m - 1)/m) z_j,  B <- B - dB_j   (m = K - j)
+        w_{j+1} = SHAKE(w_j, w_j + Pi_{w_j} (-(h/K) f + dB_j))
     """
-    move = -step * force
+    dt = step / substeps
+    left = None  # the Brownian increment not yet used
     if temperature > 0.0:
         noise = torch.randn(w.shape, generator=generator, dtype=w.dtype, device=w.device)
-        move = move + math.sqrt(2.0 * temperature * step) * noise
-    result = geometry.shake(w, w + geometry.tangent(w, move))
-    return Phase(w=result.position, p=move, ok=result.ok, iterations=result.iterations)
+        left = math.sqrt(2.0 * temperature * step) * noise
+    position, move, ok, iterations = w, None, None, 0
+    for j in range(substeps):
+        move = -dt * force
+        if left is not None:
+            m = substeps - j
+            if m == 1:
+                increment = left
+            else:
+                z = torch.randn(w.shape, generator=generator, dtype=w.dtype, device=w.device)
+                increment = left / m + math.sqrt(2.0 * temperature * dt * (m - 1) / m) * z
+                left = left - increment
+            move = move + increment
+        result = geometry.shake(position, position + geometry.tangent(position, move))
+        position = result.position
+        ok = result.ok if ok is None else ok & result.ok
+        iterations = max(iterations, result.iterations)
+    return Phase(w=position, p=move, ok=ok, iterations=iterations)

@@ -39,7 +39,7 @@ from typing import Any, Callable, Iterable
 import torch
 from torch import Tensor
 
-from holonomic.dynamics.base import ConstrainedOptimizer
+from holonomic.dynamics.base import NOT_TRACED, ConstrainedOptimizer
 from holonomic.dynamics.langevin import Langevin
 from holonomic.dynamics.operators import Phase, Settings, run_scheme
 from holonomic.dynamics.settings import integrator_step_and_friction, sgd_settings
@@ -145,6 +145,9 @@ class AdaptiveLangevin(Langevin):
         dataset_size: multiplies the gradient.
         weight_decay: Gaussian prior precision for unconstrained parameters.
         substeps: RATTLE/geodesic substeps per half drift.
+        retry_substeps: retry a step whose projection failed with more substeps
+            (``None``: raise), as for :class:`holonomic.Langevin`; the retry
+            re-runs the whole step (B, A, D, O, D, A), the thermostat included.
 
     Raises:
         ValueError: at construction (or ``add_param_group``) for bad hyperparameters.
@@ -173,6 +176,7 @@ class AdaptiveLangevin(Langevin):
         dataset_size: float | None = None,
         weight_decay: float = 0.0,
         substeps: int = 1,
+        retry_substeps: int | None = None,
     ) -> None:
         lr, momentum = sgd_settings(lr, momentum, step, friction)
         defaults = dict(lr=lr, momentum=momentum, temperature=temperature,
@@ -184,7 +188,7 @@ class AdaptiveLangevin(Langevin):
         self._scratch: dict[str, Any] | None = None
         # Langevin.__init__ would validate defaults without the thermostat keys; the
         # bookkeeping lives in ConstrainedOptimizer.
-        ConstrainedOptimizer.__init__(self, params, defaults, seed=seed)
+        ConstrainedOptimizer.__init__(self, params, defaults, seed=seed, retry_substeps=retry_substeps)
 
     # -- groups ------------------------------------------------------------------------
     def _validate_group(self, group: dict[str, Any]) -> None:
@@ -297,6 +301,13 @@ class AdaptiveLangevin(Langevin):
         ok = phase.ok & torch.isfinite(phase.p).all() & torch.isfinite(xi)
         return phase.w, phase.p, ok, phase.iterations
 
+    def _take_step(self) -> None:
+        """The opening B A D of every group, then O and the closing A per parameter
+        (one attempt: a retry with more substeps re-runs both)."""
+        self._scratch = self._open_step()
+        super()._take_step()
+
+    @torch.compiler.disable(reason=NOT_TRACED)
     @torch.no_grad()
     def step(self, closure: Callable[[], Tensor] | None = None) -> Tensor | None:  # type: ignore[override]
         """Take one step using the gradients in ``.grad`` (see the class docstring).
@@ -309,10 +320,8 @@ class AdaptiveLangevin(Langevin):
         if closure is not None:
             with torch.enable_grad():
                 loss = closure()
-        self._check_step_inputs()  # before _open_step reads the settings and momenta
-        self._scratch = self._open_step()
         try:
-            super().step()  # O, A per parameter; commits, or raises having changed nothing
+            super().step()  # B A D, then O, A per parameter (_take_step); commits, or raises having changed nothing
             scratch = self._scratch
         finally:
             self._scratch = None
