@@ -31,7 +31,7 @@ def zero_grads(*layers: nn.Module) -> None:
             p.grad = torch.zeros_like(p)
 
 
-def snapshot(opt: hn.dynamics.ConstrainedOptimizer, *layers: nn.Module) -> tuple:
+def snapshot(opt: hn.dynamics.HolonomicIntegrator, *layers: nn.Module) -> tuple:
     weights = [p.detach().clone() for layer in layers for p in layer.parameters()]
     momenta = {id(p): s["momentum"].clone() for p, s in opt.state.items() if "momentum" in s}
     gens = {k: g.get_state().clone() for k, g in opt._generators.items()}

@@ -22,7 +22,7 @@ from holonomic.dynamics.settings import check_lr, integrator_step_and_friction
 from holonomic.geometry.base import check_positive
 from holonomic.geometry.registry import check_not_replaced
 
-__all__ = ["IntegrationError", "ParameterStepInfo", "StepInfo", "ConstrainedOptimizer", "Pending"]
+__all__ = ["IntegrationError", "ParameterStepInfo", "StepInfo", "HolonomicIntegrator", "Pending"]
 
 
 class IntegrationError(RuntimeError):
@@ -158,7 +158,7 @@ def check_retry_substeps(value: Any) -> int | None:
     return value
 
 
-class ConstrainedOptimizer(torch.optim.Optimizer):
+class HolonomicIntegrator(torch.optim.Optimizer):
     """Bookkeeping common to all holonomic integrators (see module docstring).
 
     Subclasses define ``_validate_group(group)`` and ``_update(...)``.

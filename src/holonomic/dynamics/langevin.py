@@ -9,7 +9,7 @@ import torch
 from torch import Tensor
 
 from holonomic.dynamics.base import (
-    ConstrainedOptimizer,
+    HolonomicIntegrator,
     check_dataset_size,
     check_temperature,
 )
@@ -35,7 +35,7 @@ def _check_weight_decay(value: Any) -> float:
     return check_positive("weight_decay", value, allow_zero=True)
 
 
-class Langevin(ConstrainedOptimizer):
+class Langevin(HolonomicIntegrator):
     r"""Underdamped Langevin dynamics on the constraint sets of the parameters.
 
     Samples, at temperature ``T > 0``, the density proportional to
@@ -313,7 +313,7 @@ class Langevin(ConstrainedOptimizer):
         """Not switched off, not failed to compile, and ``force`` not
         overridden (the compiled kernels compute the force themselves)."""
         return (getattr(self, "compiled", None) is not False and not self.__dict__.get("_compile_failed", False)
-                and type(self).force is ConstrainedOptimizer.force)
+                and type(self).force is HolonomicIntegrator.force)
 
     def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
         state = self.state[p]
@@ -330,7 +330,7 @@ class Langevin(ConstrainedOptimizer):
         return phase.w, phase.p, ok, phase.iterations
 
 
-class OverdampedLangevin(ConstrainedOptimizer):
+class OverdampedLangevin(HolonomicIntegrator):
     r"""Overdamped (Brownian) Langevin dynamics on the constraint sets.
 
     Projected Euler-Maruyama with a SHAKE-type projection along the normal

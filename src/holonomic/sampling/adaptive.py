@@ -39,7 +39,7 @@ from typing import Any, Callable, Iterable
 import torch
 from torch import Tensor
 
-from holonomic.dynamics.base import NOT_TRACED, ConstrainedOptimizer
+from holonomic.dynamics.base import NOT_TRACED, HolonomicIntegrator
 from holonomic.dynamics.langevin import Langevin
 from holonomic.dynamics.operators import Phase, Settings, run_scheme
 from holonomic.dynamics.settings import integrator_step_and_friction, sgd_settings
@@ -187,8 +187,8 @@ class AdaptiveLangevin(Langevin):
         self._xi: list[Tensor] = []
         self._scratch: dict[str, Any] | None = None
         # Langevin.__init__ would validate defaults without the thermostat keys; the
-        # bookkeeping lives in ConstrainedOptimizer.
-        ConstrainedOptimizer.__init__(self, params, defaults, seed=seed, retry_substeps=retry_substeps)
+        # bookkeeping lives in HolonomicIntegrator.
+        HolonomicIntegrator.__init__(self, params, defaults, seed=seed, retry_substeps=retry_substeps)
 
     # -- groups ------------------------------------------------------------------------
     def _validate_group(self, group: dict[str, Any]) -> None:
