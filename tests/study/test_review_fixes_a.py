@@ -41,3 +41,81 @@ def test_dropout_runs_are_reproducible_and_paired_across_arms(tiny_doc):
     torch.manual_seed(1)
     _metrics(config, "none", 0.0)
     assert torch.equal(torch.random.get_rng_state(), state)
+
+
+# ---------------------------------------------------------------------------------------
+# 2, 3: an edited factory module, a moved study folder, what changed
+
+import os  # noqa: E402
+import shutil  # noqa: E402
+import sys  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+from holonomic.cli import main  # noqa: E402
+from tests.study.robust_helpers import (  # noqa: E402
+    SMALL_TOML,
+    snapshot,
+    with_data_file,
+    write_invented_csv,
+    write_study,
+)
+
+ONE_SEED_TOML = SMALL_TOML.replace("[arms.fixed_norm]\ngrid = [0.5]\n", "").replace(
+    "epochs = 3", "epochs = 2")
+
+
+def _cli(study: Path, out: Path, *extra: str) -> int:
+    return main(["study", str(study), "--out", str(out), "--quiet", "--no-plots", *extra])
+
+
+def _factory_source(width: int) -> str:
+    return ("from torch import nn\n\n"
+            "def make(in_features, n_outputs):\n"
+            f"    return nn.Sequential(nn.Linear(in_features, {width}), nn.ReLU(),\n"
+            f"                         nn.Linear({width}, n_outputs))\n")
+
+
+def test_an_edited_factory_module_is_a_different_model(tmp_path, capsys):
+    module = f"edited_model_{os.getpid()}"
+    source = tmp_path / f"{module}.py"
+    source.write_text(_factory_source(4))
+    study = write_study(tmp_path, ONE_SEED_TOML.replace("widths = [8, 8]",
+                                                        f'factory = "{module}:make"'))
+    out = tmp_path / "out"
+    sys.modules.pop(module, None)
+    try:
+        assert _cli(study, out) == 0, capsys.readouterr().err
+        capsys.readouterr()
+        before = snapshot(out)
+        source.write_text(_factory_source(16))  # a wider layer: another model
+        sys.modules.pop(module, None)
+        assert _cli(study, out) == 2
+        err = capsys.readouterr().err
+        assert "Traceback" not in err
+        assert "different data, model or budget" in err and "model_source.sha256" in err, err
+        assert snapshot(out) == before
+    finally:
+        sys.modules.pop(module, None)
+
+
+def _csv_study(folder: Path) -> Path:
+    folder.mkdir(parents=True)
+    write_invented_csv(folder / "data.csv", n=200)
+    return write_study(folder, with_data_file(ONE_SEED_TOML, "data.csv"))
+
+
+def test_a_moved_study_folder_still_reports_and_changes_are_named(tmp_path, capsys):
+    first = tmp_path / "first"
+    study = _csv_study(first)
+    assert _cli(study, first / "out") == 0, capsys.readouterr().err
+    moved = tmp_path / "elsewhere" / "moved"
+    shutil.copytree(first, moved)
+    shutil.rmtree(first)
+    assert _cli(moved / study.name, moved / "out", "--report-only") == 0, \
+        capsys.readouterr().err
+    capsys.readouterr()
+    (moved / study.name).write_text((moved / study.name).read_text().replace(
+        "epochs = 2", "epochs = 3"))
+    assert _cli(moved / study.name, moved / "out", "--report-only") == 2
+    err = capsys.readouterr().err
+    assert "budget.epochs: 2 -> 3" in err, err

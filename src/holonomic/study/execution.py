@@ -85,14 +85,14 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
     """
     if not records:
         return
-    expected = config.training_fingerprint()
+    accepted = config.accepted_fingerprints()
     runs = str(storage.runs_dir(out_dir))
     for key, record in records.items():
-        if record.get("fingerprint") != expected:
+        if record.get("fingerprint") not in accepted:
             raise StudyConfigError(
                 f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "
-                "data, model or budget settings; use a new --out directory or delete "
-                f"{runs!r}")
+                f"data, model or budget settings{_what_changed(config, out_dir)}; use a new "
+                f"--out directory or delete {runs!r}")
     fingerprint = data_fingerprint(config) if fingerprint is None else fingerprint
     for key, record in records.items():
         theirs = record.get("data_fingerprint")
@@ -116,6 +116,52 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
                 f"{record.get('ensemble_settings')}, the study asks for {wanted} "
                 f"([arms.{record['arm']}.ensemble]); use a new --out directory or delete that "
                 f"arm's runs ({record['arm']}-*.json) from {runs!r}")
+
+
+#: Parts of the study definition (``DIR/study.json``) that the training fingerprint covers.
+_FINGERPRINTED = ("data", "model", "budget", "arm_constrain", "model_source")
+
+
+def _flatten(value, prefix: str, out: dict) -> dict:
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _flatten(item, f"{prefix}.{key}" if prefix else str(key), out)
+    else:
+        out[prefix] = value
+    return out
+
+
+def definition_changes(stored: dict, current: dict) -> list[str]:
+    """``"budget.epochs: 3 -> 4"`` for every differing key of the fingerprinted parts of two
+    study definitions (``"(absent)"`` for a key one of them lacks), sorted."""
+    old = _flatten({k: stored.get(k) for k in _FINGERPRINTED if stored.get(k) is not None},
+                   "", {})
+    new = _flatten({k: current.get(k) for k in _FINGERPRINTED if current.get(k) is not None},
+                   "", {})
+    missing = "(absent)"
+    return [f"{key}: {old.get(key, missing)!r} -> {new.get(key, missing)!r}"
+            for key in sorted(set(old) | set(new))
+            if _normal(old.get(key, missing)) != _normal(new.get(key, missing))]
+
+
+def _normal(value):
+    return list(value) if isinstance(value, tuple) else value
+
+
+def _what_changed(config: StudyConfig, out_dir: str | Path) -> str:
+    """`` (changed: budget.epochs: 3 -> 4)``, from the definition in ``DIR/study.json``, or
+    an empty string when there is none to compare with (or nothing differs there)."""
+    from holonomic.study import study_definition
+
+    path = Path(out_dir) / storage.STUDY_RECORD
+    try:
+        stored = storage.loads(path.read_text(encoding="utf-8")).get("definition") or {}
+        stored = storage.loads(storage.dumps(stored))
+        current = storage.loads(storage.dumps(study_definition(config, None)))
+    except (OSError, ValueError, AttributeError):
+        return ""
+    changes = definition_changes(stored, current)
+    return f" (changed since {str(path)!r}: {'; '.join(changes)})" if changes else ""
 
 
 def check_model(config: StudyConfig, dataset=None) -> None:
