@@ -119,3 +119,37 @@ def test_a_moved_study_folder_still_reports_and_changes_are_named(tmp_path, caps
     assert _cli(moved / study.name, moved / "out", "--report-only") == 2
     err = capsys.readouterr().err
     assert "budget.epochs: 2 -> 3" in err, err
+
+
+# ---------------------------------------------------------------------------------------
+# 4: the factory's model is tried on the data before the study starts
+
+import pytest  # noqa: E402
+
+_BAD_OUTPUTS = {
+    "10 outputs on binary data": ("breast_cancer", "tests.study.factories:too_many_outputs",
+                                  ["(4, 10)", "expected (4, 2)", "too_many_outputs"]),
+    "10 outputs on regression": ("diabetes", "tests.study.factories:too_many_outputs",
+                                 ["(4, 10)", "expected (4, 1)", "regression"]),
+    "CNN fed feature rows": ("demo", "tests.study.factories:image_cnn",
+                             ["forward pass fails", "RuntimeError", "image_cnn"]),
+}
+
+
+@pytest.mark.parametrize("case", list(_BAD_OUTPUTS))
+def test_a_model_that_does_not_fit_the_data_is_refused_before_any_output(
+        tmp_path, capsys, case):
+    source, factory, expected = _BAD_OUTPUTS[case]
+    text = ONE_SEED_TOML.replace("widths = [8, 8]", f'factory = "{factory}"')
+    text = text.replace('source = "demo"', f'source = "{source}"')
+    if source == "diabetes":
+        text = text.replace("train_size = 64\n", "")
+    study = write_study(tmp_path, text)
+    out = tmp_path / "out"
+    assert _cli(study, out) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert "model.factory" in err
+    for part in expected:
+        assert part in err, (part, err)
+    assert not out.exists()

@@ -43,6 +43,7 @@ __all__ = [
     "PARENT_POLL_S",
     "StudyTerminated",
     "check_compatible",
+    "check_forward",
     "check_model",
     "data_fingerprint",
     "prepare_runs",
@@ -164,10 +165,57 @@ def _what_changed(config: StudyConfig, out_dir: str | Path) -> str:
     return f" (changed since {str(path)!r}: {'; '.join(changes)})" if changes else ""
 
 
+#: Rows of the data a factory's model is tried on before a study starts (:func:`check_forward`).
+_PROBE_ROWS = 4
+
+
+def check_forward(config: StudyConfig, model: torch.nn.Module, rows, n_outputs: int,
+                  dtype: torch.dtype) -> None:
+    """One forward pass of a factory's ``model`` on ``rows`` (the first rows of the data,
+    shape ``(n, in_features)``, in the budget's dtype; a missing value as 0), in eval mode
+    without gradients, as the runner feeds it. The output must have shape
+    ``(n, n_outputs)`` (``(n,)`` is also accepted for regression's single output).
+
+    Raises:
+        StudyConfigError: naming ``model.factory``, the expected and actual shapes, or the
+            forward pass's error (its text, not a traceback).
+    """
+    import numpy as np
+
+    from holonomic.study.runner import evaluation_mode
+
+    x = torch.as_tensor(np.nan_to_num(np.asarray(rows, dtype=np.float64)), dtype=dtype)
+    n, in_features = int(x.shape[0]), int(x.shape[1])
+    factory = config.model.factory
+    what = (f"{n_outputs} classes" if n_outputs > 1 else "regression: 1 output")
+    try:
+        with evaluation_mode(model):
+            out = model(x)
+    except Exception as exc:  # noqa: BLE001 - reported with its text, as a config error
+        raise StudyConfigError(
+            f"study config: 'model.factory' {factory!r}: the model's forward pass fails on "
+            f"the study's inputs, a {config.budget.dtype} tensor of shape (n, {in_features}) "
+            f"(n rows of {in_features} features; tried n = {n}): "
+            f"{type(exc).__name__}: {exc}") from None
+    shape = tuple(getattr(out, "shape", ()))
+    if not isinstance(out, torch.Tensor):
+        raise StudyConfigError(
+            f"study config: 'model.factory' {factory!r}: the model's forward pass returned "
+            f"{type(out).__name__}, not a tensor of shape ({n}, {n_outputs}) ({what})")
+    ok = shape == (n, n_outputs) or (n_outputs == 1 and shape == (n,))
+    if not ok:
+        raise StudyConfigError(
+            f"study config: 'model.factory' {factory!r}: the model's output has shape "
+            f"{shape} for {n} input rows; expected ({n}, {n_outputs}) ({what}): the "
+            "factory must build a model with n_outputs outputs (its second argument)")
+
+
 def check_model(config: StudyConfig, dataset=None) -> None:
     """Build a user factory's model once (with the study file's folder on the import path),
     so a factory that cannot be imported, has the wrong signature or returns no module is
-    refused before anything is written; then every arm's layer selection
+    refused before anything is written, and try it on the first rows of the data
+    (:func:`check_forward`: the forward pass runs, the output has one column per class or
+    a single one for regression); then every arm's layer selection
     (:func:`holonomic.study.arms.check_layer_selections`).
 
     Torch runs single-threaded meanwhile: a parent that forks workers must not have started
@@ -181,7 +229,10 @@ def check_model(config: StudyConfig, dataset=None) -> None:
     try:
         with import_path(config.base_dir):
             if config.model.factory is not None:
-                build_model(config.model, in_features, n_outputs, config.seeds[0])
+                dtype = torch.float64 if config.budget.dtype == "float64" else torch.float32
+                model = build_model(config.model, in_features, n_outputs, config.seeds[0],
+                                    dtype)
+                check_forward(config, model, dataset.x[:_PROBE_ROWS], n_outputs, dtype)
             check_layer_selections(config, in_features, n_outputs)
     finally:
         torch.set_num_threads(threads)
