@@ -153,3 +153,30 @@ def test_a_model_that_does_not_fit_the_data_is_refused_before_any_output(
     for part in expected:
         assert part in err, (part, err)
     assert not out.exists()
+
+
+# ---------------------------------------------------------------------------------------
+# 5: study files that are not UTF-8
+
+from holonomic.study import StudyConfigError, load_config  # noqa: E402
+
+
+@pytest.mark.parametrize("encoding,offset", [("utf-16", 0), ("latin-1", None)])
+def test_a_study_file_that_is_not_utf8_is_a_clear_error(tmp_path, capsys, encoding, offset):
+    text = ONE_SEED_TOML.replace('name = "small"', 'name = "étude"')
+    study = tmp_path / "s.toml"
+    study.write_bytes(text.encode(encoding))
+    with pytest.raises(StudyConfigError) as info:
+        load_config(study)
+    message = str(info.value)
+    assert str(study) in message and "study files are UTF-8 TOML" in message
+    where = offset if offset is not None else text.encode(encoding).index("é".encode(encoding))
+    assert f"byte {where} " in message
+    assert _cli(study, tmp_path / "out") == 2
+    assert "Traceback" not in capsys.readouterr().err
+
+
+def test_a_utf8_byte_order_mark_is_accepted(tmp_path):
+    study = tmp_path / "bom.toml"
+    study.write_bytes(b"\xef\xbb\xbf" + ONE_SEED_TOML.encode())
+    assert load_config(study).name == "small"

@@ -1027,12 +1027,29 @@ def factory_source_hash(factory: str, base_dir: str | Path | None) -> str:
 
 
 def load_config(path: str | Path) -> StudyConfig:
-    """Read and validate a study file (TOML)."""
+    """Read and validate a study file (UTF-8 TOML; a UTF-8 byte-order mark is allowed).
+
+    Raises:
+        StudyConfigError: the file is missing, not UTF-8 (naming the byte offset), not
+            valid TOML, or not a valid study.
+    """
     path = Path(path)
     if not path.is_file():
         raise StudyConfigError(f"study config: file does not exist: {str(path)!r}")
+    raw = path.read_bytes()
     try:
-        doc = tomllib.loads(path.read_text())
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        hint = (" (it looks like UTF-16: save it as UTF-8)"
+                if raw[:2] in (b"\xff\xfe", b"\xfe\xff") else "")
+        raise StudyConfigError(
+            f"study config: {str(path)!r} is not UTF-8 text: byte {exc.start} "
+            f"(0x{raw[exc.start]:02x}) cannot be decoded{hint}; study files are UTF-8 TOML, "
+            "save it with UTF-8 encoding") from None
+    if text.startswith("\ufeff"):  # a UTF-8 byte-order mark, as some editors write
+        text = text[1:]
+    try:
+        doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise StudyConfigError(f"study config: {str(path)!r} is not valid TOML: {exc}") from exc
     return parse_config(doc, base_dir=path.parent, default_name=path.stem)
