@@ -180,3 +180,57 @@ def test_a_utf8_byte_order_mark_is_accepted(tmp_path):
     study = tmp_path / "bom.toml"
     study.write_bytes(b"\xef\xbb\xbf" + ONE_SEED_TOML.encode())
     assert load_config(study).name == "small"
+
+
+# ---------------------------------------------------------------------------------------
+# 6: load_trained finds a factory beside the study file; mean imputation when predicting
+
+import numpy as np  # noqa: E402
+
+from holonomic.study import load_trained, predict  # noqa: E402
+
+
+def test_load_trained_finds_the_factory_beside_the_study_file(tmp_path, capsys, monkeypatch):
+    module = f"beside_trained_{os.getpid()}"
+    folder = tmp_path / "study"
+    folder.mkdir()
+    (folder / f"{module}.py").write_text(_factory_source(4))
+    study = write_study(folder, ONE_SEED_TOML.replace("widths = [8, 8]",
+                                                      f'factory = "{module}:make"'))
+    out = tmp_path / "elsewhere" / "out"  # --out not beside the study file
+    sys.modules.pop(module, None)
+    try:
+        assert _cli(study, out) == 0, capsys.readouterr().err
+        sys.modules.pop(module, None)
+        monkeypatch.chdir(tmp_path)
+        model, info = load_trained(out, "none-0.0-s0")
+        assert info["study_dir"] == str(folder.resolve())
+        assert predict(model, info, np.zeros((2, info["in_features"]))).shape == (2,)
+        # the folder gone: still a clear error naming where it looked
+        sys.modules.pop(module, None)
+        shutil.rmtree(folder)
+        with pytest.raises(StudyConfigError, match="cannot rebuild the model"):
+            load_trained(out, "none-0.0-s0")
+    finally:
+        sys.modules.pop(module, None)
+
+
+def test_predict_fills_missing_features_with_the_saved_training_means(tmp_path, capsys):
+    folder = tmp_path / "s"
+    study = _csv_study(folder)
+    lines = (folder / "data.csv").read_text().splitlines()
+    lines[3] = "," + lines[3].split(",", 1)[1]  # a missing value in column a
+    (folder / "data.csv").write_text("\n".join(lines) + "\n")
+    study.write_text(study.read_text().replace('target = "label"',
+                                               'target = "label"\nmissing = "mean"'))
+    out = folder / "out"
+    assert _cli(study, out) == 0, capsys.readouterr().err
+    model, info = load_trained(out, "none-0.0-s0")
+    mean = info["imputation_mean"].numpy()
+    assert mean.shape == (3,) and np.isfinite(mean).all()
+    x = np.array([[np.nan, 0.5, -0.2], [mean[0], 0.5, -0.2]])
+    from holonomic.study.trained import raw_outputs
+
+    outputs = raw_outputs(model, info, x)
+    assert np.array_equal(outputs[0], outputs[1])
+    assert predict(model, info, x).shape == (2,)
