@@ -234,3 +234,35 @@ def test_predict_fills_missing_features_with_the_saved_training_means(tmp_path, 
     outputs = raw_outputs(model, info, x)
     assert np.array_equal(outputs[0], outputs[1])
     assert predict(model, info, x).shape == (2,)
+
+
+def test_dropout_sampling_in_the_ensemble_phase_is_reproducible(tiny_doc):
+    doc = copy.deepcopy(tiny_doc)
+    doc["model"] = {"factory": DROPOUT}
+    doc["arms"] = {"none": {}, "weight_decay": {
+        "grid": [0.0], "ensemble": {"temperature": 1.0, "samples": 4, "every": 2,
+                                    "burn_in": 2}}}
+    config = parse_config(doc)
+    spec = RunSpec("weight_decay", 0, 0.0, seed=0)
+    torch.manual_seed(1)
+    first = train_run(config, spec, hooks=[])["ensemble"]
+    torch.manual_seed(2)
+    again = train_run(config, spec, hooks=[])["ensemble"]
+    assert first["status"] == "ok"
+    assert first["ensemble"] == again["ensemble"] and first["traces"] == again["traces"]
+
+
+def test_runs_recorded_with_the_old_fingerprint_are_still_accepted(tmp_path):
+    """Before, the fingerprint held a data file's absolute path: studies begun then, where
+    they are, stay resumable."""
+    from holonomic.study.execution import check_compatible
+
+    config = load_config(_csv_study(tmp_path / "s"))
+    legacy = config._fingerprint(legacy=True)
+    assert legacy != config.training_fingerprint()
+    record = {"arm": "none", "fingerprint": legacy, "data_fingerprint": "x",
+              "ensemble_settings": None}
+    check_compatible(config, {"none-0.0-s0": record}, tmp_path, fingerprint="x")
+    record["fingerprint"] = "0" * 16
+    with pytest.raises(StudyConfigError, match="different data, model or budget"):
+        check_compatible(config, {"none-0.0-s0": record}, tmp_path, fingerprint="x")
