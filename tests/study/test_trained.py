@@ -122,7 +122,7 @@ def test_weights_file_layout_and_load_predict(tiny_doc, tmp_path):
         "state_dict", "task", "n_classes", "n_outputs", "classes", "feature_names",
         "feature_mean", "feature_std", "target_mean", "target_std", "model", "in_features",
         "dtype", "key", "arm", "strength", "seed", "fold", "folds", "layers",
-        "data_fingerprint"}
+        "data_fingerprint", "study_dir"}
     assert (info["arm"], info["strength"], info["seed"], info["fold"]) == (
         "orthonormal", 0.5, 2, None)
     assert info["task"] == "classification" and info["target_std"] == 1.0

@@ -61,9 +61,23 @@ class IncompleteStudyError(RuntimeError):
         self.missing = missing
 
 
-def _definition(config: StudyConfig, data_fingerprint: str) -> dict[str, Any]:
-    return {**config.to_dict(), "training_fingerprint": config.training_fingerprint(),
-            "data_fingerprint": data_fingerprint}
+def study_definition(config: StudyConfig, data_fingerprint: str | None) -> dict[str, Any]:
+    """The study as recorded in ``DIR/study.json``: ``config.to_dict()``, the training and
+    data fingerprints and, with a model factory, ``model_source`` (the factory module's
+    file and a hash of its contents, which the training fingerprint covers)."""
+    out = {**config.to_dict(), "training_fingerprint": config.training_fingerprint(),
+           "data_fingerprint": data_fingerprint}
+    if config.model.factory is not None:
+        from holonomic.study.config import factory_source_file, factory_source_hash
+
+        path = factory_source_file(config.model.factory, config.base_dir)
+        out["model_source"] = {
+            "file": None if path is None else path.name,
+            "sha256": factory_source_hash(config.model.factory, config.base_dir)}
+    return out
+
+
+_definition = study_definition
 
 
 def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,

@@ -379,9 +379,32 @@ class StudyConfig:
         """Hash of everything that changes a run's result except arm, strength and seed.
 
         Stored in every run record so that a rerun into the same directory refuses to mix
-        runs of a different study.
+        runs of a different study. It covers the data settings (a data file by its path as
+        written in the study file, relative to it: a study folder moved or copied elsewhere
+        keeps its fingerprint; the data's *contents* are checked separately by their own
+        fingerprint), the model (with ``model.factory``, also a hash of the factory
+        module's source file: an edited factory is a different model, see
+        :func:`factory_source_hash`), the budget and per-arm layer selections.
+
+        Computed once per config (cached; the factory's module file is located and read
+        once, never executed here).
         """
-        payload = {
+        cached = self.__dict__.get("_training_fingerprint")
+        if cached is None:
+            cached = self._fingerprint(legacy=False)
+            object.__setattr__(self, "_training_fingerprint", cached)
+        return cached
+
+    def accepted_fingerprints(self) -> tuple[str, ...]:
+        """Training fingerprints of runs compatible with this study: the current one and,
+        without a model factory, the one earlier versions computed (data file by absolute
+        path), so studies begun before stay resumable where they are."""
+        if self.model.factory is not None:
+            return (self.training_fingerprint(),)
+        return (self.training_fingerprint(), self._fingerprint(legacy=True))
+
+    def _fingerprint(self, legacy: bool) -> str:
+        payload: dict[str, Any] = {
             "data": asdict(self.data),
             "model": asdict(self.model),
             "budget": asdict(self.budget),
@@ -389,8 +412,10 @@ class StudyConfig:
         overrides = {a.name: a.constrain for a in self.arms if a.constrain is not None}
         if overrides:  # which weights an arm acts on changes its runs
             payload["arm_constrain"] = overrides
-        if self.data_path() is not None:
+        if legacy and self.data_path() is not None:
             payload["data"]["source"] = str(self.data_path().resolve())
+        if not legacy and self.model.factory is not None:
+            payload["factory_source"] = factory_source_hash(self.model.factory, self.base_dir)
         text = json.dumps(payload, sort_keys=True, default=str)
         return hashlib.sha256(text.encode()).hexdigest()[:16]
 
@@ -958,13 +983,73 @@ def selection_metric(config: StudyConfig, task: Any) -> str:
     return config.selection
 
 
+def factory_source_file(factory: str, base_dir: str | Path | None) -> Path | None:
+    """The source file of a ``model.factory`` module (``"module:function"``), looked up as
+    the study imports it (the study file's folder first on the path), or None when it
+    cannot be found (not importable, no source file: a compiled or namespace module).
+
+    The module itself is not executed (``importlib.util.find_spec``; the parent packages of
+    a dotted name are imported, as any lookup of a submodule does), unless it is already
+    imported, when its loaded spec is used.
+    """
+    import importlib.util
+    import sys
+
+    from holonomic.study.models import import_path
+
+    module_name = factory.partition(":")[0]
+    try:
+        with import_path(base_dir):
+            module = sys.modules.get(module_name)
+            spec = (getattr(module, "__spec__", None) if module is not None
+                    else importlib.util.find_spec(module_name))
+    except (ImportError, ValueError, SyntaxError):
+        return None
+    origin = getattr(spec, "origin", None) if spec is not None else None
+    if not origin or not getattr(spec, "has_location", False):
+        return None
+    path = Path(origin)
+    return path if path.is_file() else None
+
+
+def factory_source_hash(factory: str, base_dir: str | Path | None) -> str:
+    """Hash of the factory module's source file (:func:`factory_source_file`), so runs of an
+    edited factory are not mixed with old ones. When the file cannot be found (the factory
+    is refused later anyway, or it has no source file) only the name is in the training
+    fingerprint: ``"unknown"`` here."""
+    path = factory_source_file(factory, base_dir)
+    if path is None:
+        return "unknown"
+    try:
+        return hashlib.sha256(path.read_bytes()).hexdigest()[:16]
+    except OSError:
+        return "unknown"
+
+
 def load_config(path: str | Path) -> StudyConfig:
-    """Read and validate a study file (TOML)."""
+    """Read and validate a study file (UTF-8 TOML; a UTF-8 byte-order mark is allowed).
+
+    Raises:
+        StudyConfigError: the file is missing, not UTF-8 (naming the byte offset), not
+            valid TOML, or not a valid study.
+    """
     path = Path(path)
     if not path.is_file():
         raise StudyConfigError(f"study config: file does not exist: {str(path)!r}")
+    raw = path.read_bytes()
     try:
-        doc = tomllib.loads(path.read_text())
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        hint = (" (it looks like UTF-16: save it as UTF-8)"
+                if raw[:2] in (b"\xff\xfe", b"\xfe\xff") else "")
+        raise StudyConfigError(
+            f"study config: {str(path)!r} is not UTF-8 text: byte {exc.start} "
+            f"(0x{raw[exc.start]:02x}) cannot be decoded{hint}; study files are UTF-8 TOML, "
+            "save it with UTF-8 encoding") from None
+    if text.startswith("\ufeff"):  # a UTF-8 byte-order mark, as some editors write
+        text = text[1:]
+    try:
+        doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise StudyConfigError(f"study config: {str(path)!r} is not valid TOML: {exc}") from exc
     return parse_config(doc, base_dir=path.parent, default_name=path.stem)

@@ -163,7 +163,8 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
     ensemble metrics NaN unless ``ok``), ``traces`` (observable -> list of one value per
     sample), ``constraint_residual`` after sampling, ``wall_s``.
     """
-    from holonomic.study.runner import epoch_order, evaluation_mode, minibatch_step
+    from holonomic.study.runner import (_SAMPLING_RNG_OFFSET, epoch_order, evaluation_mode,
+                                        minibatch_step, model_rng)
 
     started = time.perf_counter()
     x_train, y_train = data["train"]
@@ -201,25 +202,27 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
     batch = config.budget.batch_size
     status, message, step, epoch = "ok", "", 0, first_epoch
     model.train()
-    try:
-        while step < total:
-            order = epoch_order(n_train, seed, epoch)
-            epoch += 1
-            for start in range(0, n_train, batch):
-                if step == total:
-                    break
-                minibatch_step(model, sampler, setup, x_train, y_train,
-                               order[start:start + batch], f"sampling step {step}", task.loss)
-                step += 1
-                if collector.observe():  # collects in eval mode
-                    with evaluation_mode(model):
-                        train_loss = float(task.loss(model(x_train), y_train))
-                    traces["train_loss"].append(train_loss)
-                    traces["weight_norm_output"].append(_output_norm(model))
-    except hn.IntegrationError as exc:
-        status, message = "failed", f"IntegrationError at sampling step {step}: {exc}"
-    except FloatingPointError as exc:
-        status, message = "diverged", str(exc)
+    # dropout masks (the global torch RNG) fixed by the seed; the caller's RNG is untouched
+    with model_rng(seed, 0, _SAMPLING_RNG_OFFSET):
+        try:
+            while step < total:
+                order = epoch_order(n_train, seed, epoch)
+                epoch += 1
+                for start in range(0, n_train, batch):
+                    if step == total:
+                        break
+                    minibatch_step(model, sampler, setup, x_train, y_train,
+                                   order[start:start + batch], f"sampling step {step}", task.loss)
+                    step += 1
+                    if collector.observe():  # collects in eval mode
+                        with evaluation_mode(model):
+                            train_loss = float(task.loss(model(x_train), y_train))
+                        traces["train_loss"].append(train_loss)
+                        traces["weight_norm_output"].append(_output_norm(model))
+        except hn.IntegrationError as exc:
+            status, message = "failed", f"IntegrationError at sampling step {step}: {exc}"
+        except FloatingPointError as exc:
+            status, message = "diverged", str(exc)
     if status == "ok" and not all(math.isfinite(v) for t in traces.values() for v in t):
         status, message = "diverged", "non-finite traced observable"
     nan = {name: math.nan for name in ensemble_metrics(task)}

@@ -43,6 +43,7 @@ __all__ = [
     "PARENT_POLL_S",
     "StudyTerminated",
     "check_compatible",
+    "check_forward",
     "check_model",
     "data_fingerprint",
     "prepare_runs",
@@ -85,14 +86,14 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
     """
     if not records:
         return
-    expected = config.training_fingerprint()
+    accepted = config.accepted_fingerprints()
     runs = str(storage.runs_dir(out_dir))
     for key, record in records.items():
-        if record.get("fingerprint") != expected:
+        if record.get("fingerprint") not in accepted:
             raise StudyConfigError(
                 f"study config: {str(out_dir)!r} holds run {key!r} from a study with different "
-                "data, model or budget settings; use a new --out directory or delete "
-                f"{runs!r}")
+                f"data, model or budget settings{_what_changed(config, out_dir)}; use a new "
+                f"--out directory or delete {runs!r}")
     fingerprint = data_fingerprint(config) if fingerprint is None else fingerprint
     for key, record in records.items():
         theirs = record.get("data_fingerprint")
@@ -118,10 +119,103 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
                 f"arm's runs ({record['arm']}-*.json) from {runs!r}")
 
 
+#: Parts of the study definition (``DIR/study.json``) that the training fingerprint covers.
+_FINGERPRINTED = ("data", "model", "budget", "arm_constrain", "model_source")
+
+
+def _flatten(value, prefix: str, out: dict) -> dict:
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _flatten(item, f"{prefix}.{key}" if prefix else str(key), out)
+    else:
+        out[prefix] = value
+    return out
+
+
+def definition_changes(stored: dict, current: dict) -> list[str]:
+    """``"budget.epochs: 3 -> 4"`` for every differing key of the fingerprinted parts of two
+    study definitions (``"(absent)"`` for a key one of them lacks), sorted."""
+    old = _flatten({k: stored.get(k) for k in _FINGERPRINTED if stored.get(k) is not None},
+                   "", {})
+    new = _flatten({k: current.get(k) for k in _FINGERPRINTED if current.get(k) is not None},
+                   "", {})
+    missing = "(absent)"
+    return [f"{key}: {old.get(key, missing)!r} -> {new.get(key, missing)!r}"
+            for key in sorted(set(old) | set(new))
+            if _normal(old.get(key, missing)) != _normal(new.get(key, missing))]
+
+
+def _normal(value):
+    return list(value) if isinstance(value, tuple) else value
+
+
+def _what_changed(config: StudyConfig, out_dir: str | Path) -> str:
+    """`` (changed: budget.epochs: 3 -> 4)``, from the definition in ``DIR/study.json``, or
+    an empty string when there is none to compare with (or nothing differs there)."""
+    from holonomic.study import study_definition
+
+    path = Path(out_dir) / storage.STUDY_RECORD
+    try:
+        stored = storage.loads(path.read_text(encoding="utf-8")).get("definition") or {}
+        stored = storage.loads(storage.dumps(stored))
+        current = storage.loads(storage.dumps(study_definition(config, None)))
+    except (OSError, ValueError, AttributeError):
+        return ""
+    changes = definition_changes(stored, current)
+    return f" (changed since {str(path)!r}: {'; '.join(changes)})" if changes else ""
+
+
+#: Rows of the data a factory's model is tried on before a study starts (:func:`check_forward`).
+_PROBE_ROWS = 4
+
+
+def check_forward(config: StudyConfig, model: torch.nn.Module, rows, n_outputs: int,
+                  dtype: torch.dtype) -> None:
+    """One forward pass of a factory's ``model`` on ``rows`` (the first rows of the data,
+    shape ``(n, in_features)``, in the budget's dtype; a missing value as 0), in eval mode
+    without gradients, as the runner feeds it. The output must have shape
+    ``(n, n_outputs)`` (``(n,)`` is also accepted for regression's single output).
+
+    Raises:
+        StudyConfigError: naming ``model.factory``, the expected and actual shapes, or the
+            forward pass's error (its text, not a traceback).
+    """
+    import numpy as np
+
+    from holonomic.study.runner import evaluation_mode
+
+    x = torch.as_tensor(np.nan_to_num(np.asarray(rows, dtype=np.float64)), dtype=dtype)
+    n, in_features = int(x.shape[0]), int(x.shape[1])
+    factory = config.model.factory
+    what = (f"{n_outputs} classes" if n_outputs > 1 else "regression: 1 output")
+    try:
+        with evaluation_mode(model):
+            out = model(x)
+    except Exception as exc:  # noqa: BLE001 - reported with its text, as a config error
+        raise StudyConfigError(
+            f"study config: 'model.factory' {factory!r}: the model's forward pass fails on "
+            f"the study's inputs, a {config.budget.dtype} tensor of shape (n, {in_features}) "
+            f"(n rows of {in_features} features; tried n = {n}): "
+            f"{type(exc).__name__}: {exc}") from None
+    shape = tuple(getattr(out, "shape", ()))
+    if not isinstance(out, torch.Tensor):
+        raise StudyConfigError(
+            f"study config: 'model.factory' {factory!r}: the model's forward pass returned "
+            f"{type(out).__name__}, not a tensor of shape ({n}, {n_outputs}) ({what})")
+    ok = shape == (n, n_outputs) or (n_outputs == 1 and shape == (n,))
+    if not ok:
+        raise StudyConfigError(
+            f"study config: 'model.factory' {factory!r}: the model's output has shape "
+            f"{shape} for {n} input rows; expected ({n}, {n_outputs}) ({what}): the "
+            "factory must build a model with n_outputs outputs (its second argument)")
+
+
 def check_model(config: StudyConfig, dataset=None) -> None:
     """Build a user factory's model once (with the study file's folder on the import path),
     so a factory that cannot be imported, has the wrong signature or returns no module is
-    refused before anything is written; then every arm's layer selection
+    refused before anything is written, and try it on the first rows of the data
+    (:func:`check_forward`: the forward pass runs, the output has one column per class or
+    a single one for regression); then every arm's layer selection
     (:func:`holonomic.study.arms.check_layer_selections`).
 
     Torch runs single-threaded meanwhile: a parent that forks workers must not have started
@@ -135,7 +229,10 @@ def check_model(config: StudyConfig, dataset=None) -> None:
     try:
         with import_path(config.base_dir):
             if config.model.factory is not None:
-                build_model(config.model, in_features, n_outputs, config.seeds[0])
+                dtype = torch.float64 if config.budget.dtype == "float64" else torch.float32
+                model = build_model(config.model, in_features, n_outputs, config.seeds[0],
+                                    dtype)
+                check_forward(config, model, dataset.x[:_PROBE_ROWS], n_outputs, dtype)
             check_layer_selections(config, in_features, n_outputs)
     finally:
         torch.set_num_threads(threads)

@@ -12,7 +12,10 @@ the output width (``task.n_outputs``), the loss (``task.loss``) and the metrics
 (``task.run_metrics``). Training steps run with the model in train mode; every evaluation
 (per-epoch history, final metrics, the ensemble phase's predictions) runs in eval mode under
 ``torch.no_grad()`` (:func:`evaluation_mode`), so dropout is off and batch-norm layers use
-their running statistics.
+their running statistics. Randomness a model draws from the global torch RNG while it
+trains (dropout masks) is seeded by seed and fold (:func:`model_rng`, inside
+``torch.random.fork_rng``: the caller's RNG is untouched), so runs are reproducible and
+every arm at the same seed draws the same masks.
 
 k-fold data (the data module's ``make_splits`` returns several folds): one model per fold,
 all from the same initial weights (the seed), with integrator noise seeded by seed and
@@ -62,6 +65,7 @@ __all__ = [
     "load_folds",
     "make_optimizer",
     "minibatch_step",
+    "model_rng",
     "outputs_of",
     "plan_runs",
     "record_metric_names",
@@ -76,6 +80,26 @@ WEIGHT_METRICS = ("weight_norm_hidden", "mean_row_norm_hidden", "weight_norm_out
 #: Fold ``j`` of a seed draws its integrator noise from ``seed + j * _FOLD_SEED_OFFSET``
 #: (fold 0, and hold-out runs, from the seed itself).
 _FOLD_SEED_OFFSET = 100_003
+#: Randomness a model draws from the global torch RNG in its forward pass (``nn.Dropout``,
+#: ...) during training is seeded with ``seed + _FOLD_SEED_OFFSET * fold +
+#: _MODEL_RNG_OFFSET`` (:func:`model_rng`), which differs from the initial-weights seed.
+_MODEL_RNG_OFFSET = 7_919_007
+#: ... and during an ensemble phase's sampling with this offset instead.
+_SAMPLING_RNG_OFFSET = 15_485_863
+
+
+@contextmanager
+def model_rng(seed: int, fold: int = 0, offset: int = _MODEL_RNG_OFFSET) -> Iterator[None]:
+    """Seed the global torch RNG (CPU) for the duration, inside
+    :func:`torch.random.fork_rng`, so the caller's global RNG state is restored afterwards.
+
+    Dropout masks and any other randomness a model's forward draws from the global RNG
+    are then fixed by (seed, fold): a run is reproducible, and every arm at the same seed
+    draws the same masks (runs stay paired across arms).
+    """
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(int(seed) + _FOLD_SEED_OFFSET * int(fold) + int(offset))
+        yield
 
 
 @dataclass(frozen=True)
@@ -320,7 +344,6 @@ def _train_fold(config: StudyConfig, spec: RunSpec, split: Split, fold: int,
     setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model, config)
     optimizer = make_optimizer(model.parameters(), config, setup.weight_decay,
                                spec.seed + _FOLD_SEED_OFFSET * fold)
-    batch = config.budget.batch_size
     total_steps = _planned_steps(config, n_train)
     scheduler = None
     if config.budget.schedule == "cosine":
@@ -330,8 +353,29 @@ def _train_fold(config: StudyConfig, spec: RunSpec, split: Split, fold: int,
     history: dict[str, list] = {k: [] for k in (
         ["epoch"] + [f"{part}_{headline}" for part in PARTS]
         + [f"{part}_loss" for part in PARTS] + ["mean_row_norm_hidden", "constraint_residual"])}
-    status, message, step = "ok", "", 0
     model.train()
+    with model_rng(spec.seed, fold):
+        status, message, step = _train_epochs(config, spec, model, optimizer, setup, scheduler,
+                                              data, targets, task, hooks, history, where)
+    for hook in hooks:
+        if hasattr(hook, "finish"):
+            hook.finish(model, optimizer, step)
+    metrics = _final_metrics(model, data, setup, status, task, targets)
+    return _FoldRun(fold, task, split, model, setup, data, status, message, step, n_train,
+                    history, metrics, {hook.name: hook.summary() for hook in hooks})
+
+
+def _train_epochs(config: StudyConfig, spec: RunSpec, model: nn.Module,
+                  optimizer: torch.optim.Optimizer, setup: ArmSetup, scheduler, data: dict,
+                  targets: dict, task: Task, hooks: list[StepHook], history: dict[str, list],
+                  where: str) -> tuple[str, str, int]:
+    """The epochs of :func:`_train_fold` (the caller seeds the global RNG); returns
+    ``(status, message, steps done)``."""
+    x_train, y_train = data["train"]
+    n_train = len(y_train)
+    batch = config.budget.batch_size
+    headline = task.headline
+    status, message, step = "ok", "", 0
     for epoch in range(config.budget.epochs):
         order = epoch_order(n_train, spec.seed, epoch)
         try:
@@ -356,13 +400,7 @@ def _train_fold(config: StudyConfig, spec: RunSpec, split: Split, fold: int,
             history[f"{part}_loss"].append(scores[part]["loss"])
         history["mean_row_norm_hidden"].append(weight_norms(model, setup)["mean_row_norm_hidden"])
         history["constraint_residual"].append(constraint_residual(model, setup))
-
-    for hook in hooks:
-        if hasattr(hook, "finish"):
-            hook.finish(model, optimizer, step)
-    metrics = _final_metrics(model, data, setup, status, task, targets)
-    return _FoldRun(fold, task, split, model, setup, data, status, message, step, n_train,
-                    history, metrics, {hook.name: hook.summary() for hook in hooks})
+    return status, message, step
 
 
 def _mean_history(histories: list[dict[str, list]]) -> dict[str, list]:

@@ -31,6 +31,10 @@ key                 value
                     ``in_features``, ``dtype`` (``"float32"``/``"float64"``)
 ``arm``,            the run: arm, strength, seed, ``fold`` (None for hold-out), ``folds``,
 ``strength``, ...   ``key``, ``layers`` (parameters the arm acted on), ``data_fingerprint``
+``study_dir``       the study file's folder when it was trained (a string; where a model
+                    factory module beside the study file is looked for when rebuilding)
+``imputation_mean`` only with ``data.missing = "mean"``: float64 tensor (d,), the training
+                    part's feature means (raw units) that filled missing features
 ==================  ============================================================================
 
 Rebuild and predict::
@@ -42,10 +46,14 @@ Rebuild and predict::
     probs = class_probabilities(model, info, x)   # classification: (n, k), float64
 
 ``x`` is a 2-D array of raw feature values (columns in the order of
-``info["feature_names"]``, as in the data file, without the target column);
-:func:`predict` standardises it with the saved statistics, runs the network in eval mode and
-maps regression outputs back with ``target_mean + target_std * output``. A model factory
-(``model.factory``) must be importable (its folder on ``sys.path``) to rebuild the network.
+``info["feature_names"]``, as in the data file, without the target column); with
+``data.missing = "mean"`` a NaN in ``x`` is filled with ``info["imputation_mean"]`` (as in
+training), otherwise a non-finite value is refused; :func:`predict` standardises it with
+the saved statistics, runs the network in eval mode and maps regression outputs back
+with ``target_mean + target_std * output``. A model factory (``model.factory``) must be
+importable to rebuild the network: the study file's folder recorded at training time
+(``info["study_dir"]``) and the folder above the study's ``--out`` directory are searched
+first, then ``sys.path``.
 By hand: ``build_model(ModelConfig(**info["model"]), info["in_features"],
 info["n_outputs"], seed, dtype)`` from :mod:`holonomic.study.models`, then
 ``model.load_state_dict(info["state_dict"])`` and ``model.eval()``.
@@ -53,6 +61,7 @@ info["n_outputs"], seed, dtype)`` from :mod:`holonomic.study.models`, then
 
 from __future__ import annotations
 
+import contextlib
 import os
 from pathlib import Path
 from typing import Any
@@ -121,7 +130,11 @@ def save_run_weights(out_dir: str | Path, spec: Any, model: nn.Module, dataset: 
         "folds": int(folds),
         "layers": [str(name) for name in layers],
         "data_fingerprint": dataset.fingerprint,
+        "study_dir": str(Path(config.base_dir).resolve()),
     }
+    imputation = getattr(split, "imputation_mean", None)
+    if imputation is not None:  # data.missing = "mean": predict fills missing the same way
+        payload["imputation_mean"] = torch.as_tensor(np.asarray(imputation, dtype=np.float64))
     _write_atomic(path, payload)
     return os.path.relpath(path, out_dir).replace(os.sep, "/")
 
@@ -131,16 +144,42 @@ def load_weights(path: str | Path) -> dict[str, Any]:
     return torch.load(Path(path), map_location="cpu", weights_only=True)
 
 
-def rebuild_model(info: dict[str, Any]) -> nn.Module:
-    """The network of a weights file with its weights loaded, in eval mode."""
-    from holonomic.study.config import ModelConfig
-    from holonomic.study.models import build_model
+def rebuild_model(info: dict[str, Any], study_dir: str | Path | None = None) -> nn.Module:
+    """The network of a weights file with its weights loaded, in eval mode.
+
+    A model factory (``model.factory``) is imported with the study file's folder recorded
+    at training time (``info["study_dir"]``) first on the import path, then the folder
+    above ``study_dir`` (the study's ``--out`` directory, which usually sits beside the
+    study file), then the ordinary path.
+
+    Raises:
+        StudyConfigError: the factory cannot be imported from any of these, naming them.
+    """
+    from holonomic.study.config import ModelConfig, StudyConfigError
+    from holonomic.study.models import build_model, import_path
 
     spec = info["model"]
     model_config = ModelConfig(widths=tuple(spec["widths"]), activation=spec["activation"],
                                factory=spec["factory"])
-    model = build_model(model_config, int(info["in_features"]), int(info["n_outputs"]),
-                        int(info["seed"]), _DTYPES[info["dtype"]])
+    folders = [str(f) for f in (info.get("study_dir"),
+                                None if study_dir is None else Path(study_dir).resolve().parent)
+               if f is not None and Path(f).is_dir()]
+    try:
+        with contextlib.ExitStack() as stack:
+            for folder in reversed(folders):  # the recorded folder ends up first
+                stack.enter_context(import_path(folder))
+            model = build_model(model_config, int(info["in_features"]), int(info["n_outputs"]),
+                                int(info["seed"]), _DTYPES[info["dtype"]])
+    except StudyConfigError as exc:
+        if spec["factory"] is None:
+            raise
+        module = str(spec["factory"]).partition(":")[0]
+        looked = ", ".join(repr(f) for f in folders) or "(no recorded study folder exists)"
+        raise StudyConfigError(
+            f"load_trained: cannot rebuild the model of {info.get('path', 'the weights file')!r}"
+            f" from its factory {spec['factory']!r}; looked in {looked} and on the Python "
+            f"path. Put the folder holding {module.split('.')[0]}.py (or its package) on "
+            f"sys.path / PYTHONPATH. ({exc})") from exc
     model.load_state_dict(info["state_dict"])
     return model.eval()
 
@@ -191,7 +230,7 @@ def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
                                 "runs and runs trained before weights were saved have none)")
     info = load_weights(path)
     info["path"] = str(path)
-    return rebuild_model(info), info
+    return rebuild_model(info, study_dir), info
 
 
 def raw_outputs(model: nn.Module, info: dict[str, Any], x: Any) -> np.ndarray:
@@ -205,10 +244,17 @@ def raw_outputs(model: nn.Module, info: dict[str, Any], x: Any) -> np.ndarray:
         listed = f" ({', '.join(names)})" if names else ""
         raise ValueError(f"x must have shape (n, {mean.shape[0]}): the {mean.shape[0]} "
                          f"feature columns{listed}; got shape {x.shape}")
+    imputation = info.get("imputation_mean")
+    if imputation is not None:  # data.missing = "mean": fill NaN as training did
+        missing = np.isnan(x)
+        if missing.any():
+            x = np.where(missing, imputation.numpy()[None, :], x)
     if not np.isfinite(x).all():
         row, column = np.argwhere(~np.isfinite(x))[0]
+        filled = ("" if imputation is None else
+                  " (only NaN is filled with the training means)")
         raise ValueError(f"x holds a non-finite value at row {row}, column {column}; the "
-                         "network needs complete rows")
+                         f"network needs complete rows{filled}")
     dtype = _DTYPES[info["dtype"]]
     inputs = torch.as_tensor((x - mean) / std, dtype=dtype)
     from holonomic.study.runner import outputs_of
