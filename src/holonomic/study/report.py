@@ -35,7 +35,7 @@ from holonomic.study.ensemble_report import (
     ensemble_summary,
 )
 from holonomic.study.runner import RunSpec, plan_runs
-from holonomic.study.stats import paired_comparison, wilcoxon_min_p
+from holonomic.study.stats import comparison_note, paired_comparison, wilcoxon_min_p
 from holonomic.study.tasks import PARTS, Task
 
 __all__ = ["LEADING_COLUMNS", "Selection", "StudyMetrics", "build_summary", "csv_columns",
@@ -419,7 +419,8 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
         return {"arm": arm, "metric": metric, "reading": "no verdict",
                 "line": f"{arm} vs {BASELINE_ARM}, {label}: no verdict ({why})"}
     _, base = _split_name(metric)
-    if comp["ci_low"] <= 0.0 <= comp["ci_high"]:
+    note = comparison_note(comp)
+    if note or comp["ci_low"] <= 0.0 <= comp["ci_high"]:
         reading = "cannot tell apart"
     else:
         arm_higher = comp["mean_difference"] > 0
@@ -427,7 +428,8 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
     digits = _digits(metric, comp)
     line = (f"{arm} vs {BASELINE_ARM}, {label}: {reading} "
             f"({comp['mean_difference']:+.{digits}f} [{comp['ci_low']:+.{digits}f}, "
-            f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds)")
+            f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds"
+            + (f"; {note}" if note else "") + ")")
     return {"arm": arm, "metric": metric, "reading": reading,
             "mean_difference": comp["mean_difference"], "ci_low": comp["ci_low"],
             "ci_high": comp["ci_high"], "n": comp["n"], "line": line}
@@ -549,6 +551,9 @@ def _interval(entry: dict[str, float], digits: int = 4) -> str:
 def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics) -> str:
     if not math.isfinite(comp["mean_difference"]) or not math.isfinite(comp["ci_low"]):
         return "no reading (non-finite values)"
+    note = comparison_note(comp)
+    if note:
+        return f"the data cannot tell them apart ({note})"
     if comp["includes_zero"]:
         return "the data cannot tell them apart (the interval includes 0)"
     prefix, base = _split_name(metric)
