@@ -6,17 +6,21 @@ Report tests use invented records (:mod:`tests.study.fabricate`), no training.
 from __future__ import annotations
 
 import dataclasses
+import json
+import re
 
 import numpy as np
 import pytest
 
-from holonomic.study import parse_config
+from holonomic.study import parse_config, storage
 from holonomic.study.ensemble_report import _reading as ensemble_reading
 from holonomic.study.report import write_outputs
 from holonomic.study.runner import RunSpec
 from holonomic.study.stats import paired_comparison
+from holonomic.study.storage import InvalidRunRecord
 from tests.study.conftest import tiny_document
 from tests.study.fabricate import fabricate
+from tests.study.test_report_schemes import _files_data, _split_column_data
 
 #: The review's paired differences: one test row of 171 each, equal up to roundoff.
 REVIEW_DIFFERENCES = np.array([-0.005847953216374974, -0.0058479532163735635])
@@ -75,3 +79,112 @@ def test_report_says_cannot_tell_apart_for_equal_differences(tmp_path):
     assert "cannot tell them apart (all 2 paired differences equal" in row
     comp = summary["comparisons_vs_weight_decay"]["none"]["test_accuracy"]
     assert ensemble_reading("accuracy", comp).startswith("cannot tell apart (all 2 paired")
+
+
+# ---------------------------------------------------------------------------------------
+# 2. finished runs must hold valid metrics
+
+def _stored_record(tmp_path, change, task="classification", binary=False):
+    config = _config(selection=None)
+    record = next(iter(fabricate(config, task, binary=binary).values()))
+    record["fingerprint"] = "0123"
+    change(record["metrics"])
+    (tmp_path / "runs").mkdir(exist_ok=True)
+    storage.write_record(tmp_path, record)
+    return tmp_path / "runs" / f"{record['key']}.json"
+
+
+@pytest.mark.parametrize("change, words", [
+    (lambda m: m.pop("test_accuracy"), "lacks the metric(s) test_accuracy"),
+    (lambda m: m.update(test_accuracy=5.0), "'test_accuracy' = 5.0 is outside"),
+    (lambda m: m.update(val_accuracy=float("nan")), "'val_accuracy' is nan, not a finite"),
+    (lambda m: m.update(test_loss=-0.5), "'test_loss' = -0.5 is outside"),
+    (lambda m: m.update(ece_test=1.5), "'ece_test' = 1.5 is outside"),
+])
+def test_finished_run_with_bad_metric_is_invalid(tmp_path, change, words):
+    path = _stored_record(tmp_path, change)
+    with pytest.raises(InvalidRunRecord, match=re.escape(words)) as caught:
+        storage.read_records(tmp_path)
+    assert str(path) in str(caught.value) and "--rerun-invalid" in str(caught.value)
+
+
+def test_regression_bounds_and_undefined_metrics(tmp_path):
+    _stored_record(tmp_path, lambda m: m.update(test_r2=1.5), "regression")
+    with pytest.raises(InvalidRunRecord, match=re.escape("'test_r2' = 1.5 is outside")):
+        storage.read_records(tmp_path)
+    # R^2 and ROC AUC can be undefined (NaN) in a finished run; R^2 can be very negative
+    _stored_record(tmp_path, lambda m: m.update(test_r2=float("nan"), val_r2=-40.0),
+                   "regression")
+    assert len(storage.read_records(tmp_path)) == 1
+    _stored_record(tmp_path, lambda m: m.update(test_roc_auc=float("nan")), binary=True)
+    assert len(storage.read_records(tmp_path)) == 1
+
+
+def test_valid_and_failed_records_still_read(tmp_path):
+    path = _stored_record(tmp_path, lambda m: None)
+    assert len(storage.read_records(tmp_path)) == 1
+    record = json.loads(path.read_text())
+    record["status"], record["metrics"] = "failed", {"test_accuracy": "nan"}
+    path.write_text(json.dumps(record))
+    assert len(storage.read_records(tmp_path)) == 1
+
+
+def test_control_character_message_has_one_at(tmp_path):
+    (tmp_path / "runs").mkdir()
+    (tmp_path / "runs" / "none-0.0-s0.json").write_text('{"key": "a\tb"}')
+    with pytest.raises(InvalidRunRecord) as caught:
+        storage.read_records(tmp_path)
+    assert "Invalid control character at line 1" in str(caught.value)
+    assert "at at" not in str(caught.value)
+
+
+# ---------------------------------------------------------------------------------------
+# 3. report text under fixed splits, without standardisation, with a diverged seed
+
+def _doc(seeds=2, arms=("none", "weight_decay")):
+    doc = tiny_document()
+    doc["study"]["seeds"] = seeds
+    doc["arms"] = {name: doc["arms"][name] for name in arms}
+    return doc
+
+
+@pytest.mark.parametrize("make", [_split_column_data, _files_data])
+def test_fixed_split_is_not_said_to_vary_with_the_seed(tmp_path, make):
+    doc = _doc()
+    doc["data"] = make(tmp_path)
+    config = parse_config(doc, base_dir=tmp_path)
+    (tmp_path / "out").mkdir()
+    _, text = _report(config, fabricate(config), tmp_path / "out")
+    assert "each seed fixes the split" not in text
+    assert "Splits differ between seeds" not in text
+    assert "the split is fixed (the same for every seed); each seed fixes the initial" in text
+    assert "The split is the same for every seed (seeds vary initial weights" in text
+
+
+def test_random_split_still_varies_with_the_seed(tmp_path):
+    config = parse_config(_doc())
+    _, text = _report(config, fabricate(config), tmp_path)
+    assert "each seed fixes the split, initial weights" in text
+    assert "Splits differ between seeds" in text
+    assert "Features standardised with training statistics." in text
+
+
+def test_unstandardised_features_are_said_not_standardised(tmp_path):
+    doc = _doc()
+    doc["data"]["standardize"] = False
+    config = parse_config(doc)
+    _, text = _report(config, fabricate(config), tmp_path)
+    assert "Features not standardised." in text and "(off)" not in text
+
+
+def test_arm_with_a_diverged_seed_everywhere_is_not_said_all_failed(tmp_path):
+    config = parse_config(_doc(arms=("none", "weight_decay", "max_norm")))
+    records = fabricate(config)
+    for record in records.values():
+        if record["arm"] == "max_norm" and record["seed"] == config.seeds[1]:
+            record["status"] = "diverged"
+            record["metrics"] = {k: float("nan") for k in record["metrics"]}
+    _, text = _report(config, records, tmp_path)
+    assert "all failed" not in text
+    assert ("| max_norm | no valid setting (every grid point has a failed or diverged seed) |"
+            in text)
