@@ -188,3 +188,32 @@ def test_arm_with_a_diverged_seed_everywhere_is_not_said_all_failed(tmp_path):
     assert "all failed" not in text
     assert ("| max_norm | no valid setting (every grid point has a failed or diverged seed) |"
             in text)
+
+
+# ---------------------------------------------------------------------------------------
+# 4. the verdict also judges the selection metric
+
+def test_verdict_judges_the_selection_metric_too(tmp_path):
+    config = _config(seeds=3, selection="val_roc_auc")
+    records = fabricate(config, binary=True, effects={"none": -0.05})
+    summary, text = _report(config, records, tmp_path)
+    assert [(v["arm"], v["metric"]) for v in summary["verdict"]] == [
+        ("none", "test_accuracy"), ("none", "test_roc_auc")]
+    top = text.split("## Set-up")[0]
+    assert "- none vs weight_decay, test accuracy: worse" in top
+    assert ("- none vs weight_decay, test ROC AUC (selection metric; higher is better): worse"
+            in top)
+
+
+def test_regression_selection_by_mae_is_lower_better(tmp_path):
+    config = _config(seeds=3, selection="val_mae")
+    records = fabricate(config, "regression", effects={"none": -0.05})
+    summary, text = _report(config, records, tmp_path)
+    assert [v["metric"] for v in summary["verdict"]] == ["test_rmse", "test_mae"]
+    assert "test MAE (selection metric; lower is better): worse" in text
+
+
+def test_verdict_has_one_line_per_arm_when_selection_is_the_headline(tmp_path):
+    config = _config(seeds=3)
+    summary, _ = _report(config, fabricate(config, binary=True), tmp_path)
+    assert [v["metric"] for v in summary["verdict"]] == ["test_accuracy"]

@@ -381,8 +381,13 @@ def _data_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, An
 
 def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
                    metrics: StudyMetrics, reason: str = "") -> dict[str, Any]:
-    """One arm's verdict against the baseline on ``metric`` (a test metric)."""
+    """One arm's verdict against the baseline on ``metric`` (a test metric). A metric other
+    than the headline (the selection metric's test counterpart) names its direction."""
     label = _short(metric)
+    _, base = _split_name(metric)
+    if base != metrics.headline:
+        label += (f" (selection metric; {'higher' if metrics.higher_is_better(base) else 'lower'}"
+                  " is better)")
     if comp is None or not all(math.isfinite(comp[k]) for k in
                                ("mean_difference", "ci_low", "ci_high")):
         why = reason or "non-finite values"
@@ -446,22 +451,25 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
     verdict: list[dict[str, Any]] = []
     base = chosen[BASELINE_ARM]
     headline = f"test_{metrics.headline}"
+    # the verdict: the headline metric, and the selection metric's test counterpart
+    judged = [headline] + [m for m in (f"test_{metrics.selection_base}",)
+                           if m != headline and m in metrics.compared]
     for arm in config.arms:
         sel = chosen[arm.name]
         if arm.name == BASELINE_ARM:
             continue
         if sel.index is None or base.index is None:
             who = arm.name if sel.index is None else BASELINE_ARM
-            verdict.append(_verdict_entry(arm.name, headline, None, metrics,
-                                          f"{who} has no valid setting"))
+            verdict += [_verdict_entry(arm.name, m, None, metrics, f"{who} has no valid setting")
+                        for m in judged]
             continue
         comparisons[arm.name] = {}
         for metric in metrics.compared:
             result = paired_comparison(_chosen_values(config, records, sel, metric),
                                        _chosen_values(config, records, base, metric))
             comparisons[arm.name][metric] = result.to_dict()
-        verdict.append(_verdict_entry(arm.name, headline, comparisons[arm.name][headline],
-                                      metrics))
+        verdict += [_verdict_entry(arm.name, m, comparisons[arm.name][m], metrics)
+                    for m in judged]
     larger = metrics.higher_is_better(metrics.selection_base)
     return {
         "study": config.to_dict(),
