@@ -8,6 +8,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import re
+import warnings
 
 import numpy as np
 import pytest
@@ -20,6 +21,7 @@ from holonomic.study.stats import paired_comparison
 from holonomic.study.storage import InvalidRunRecord
 from tests.study.conftest import tiny_document
 from tests.study.fabricate import fabricate
+from tests.study.robust_helpers import N_SMALL_RUNS, write_study
 from tests.study.test_report_schemes import _files_data, _split_column_data
 
 #: The review's paired differences: one test row of 171 each, equal up to roundoff.
@@ -217,3 +219,31 @@ def test_verdict_has_one_line_per_arm_when_selection_is_the_headline(tmp_path):
     config = _config(seeds=3)
     summary, _ = _report(config, fabricate(config, binary=True), tmp_path)
     assert [v["metric"] for v in summary["verdict"]] == ["test_accuracy"]
+
+
+# ---------------------------------------------------------------------------------------
+# 6. one-line warnings; trained and reused runs counted
+
+def test_warnings_are_one_line_during_the_command(capsys):
+    from holonomic.cli.study import _one_line_warnings
+
+    before = warnings.showwarning
+    with warnings.catch_warnings():
+        warnings.simplefilter("always")
+        with _one_line_warnings():
+            warnings.warn("the data has 3 rows", UserWarning)
+    assert warnings.showwarning is before
+    err = capsys.readouterr().err
+    assert err == "holonomic study: warning: the data has 3 rows\n"
+
+
+def test_rerun_counts_trained_and_reused_runs(tmp_path, capsys):
+    from holonomic.cli import main
+
+    study = write_study(tmp_path)
+    args = ["study", str(study), "--out", str(tmp_path / "out"), "--quiet", "--no-plots"]
+    assert main(args) == 0
+    first = capsys.readouterr().out
+    assert f"({N_SMALL_RUNS} trained now, 0 reused)" in first
+    assert main(args) == 0
+    assert f"({0} trained now, {N_SMALL_RUNS} reused)" in capsys.readouterr().out
