@@ -14,12 +14,15 @@ import numpy as np
 import pytest
 
 from holonomic.study import parse_config, storage
+from holonomic.study.config import StudyConfigError
+from holonomic.study.data import load_dataset
 from holonomic.study.ensemble_report import _reading as ensemble_reading
 from holonomic.study.report import write_outputs
 from holonomic.study.runner import RunSpec
 from holonomic.study.stats import paired_comparison
 from holonomic.study.storage import InvalidRunRecord
 from tests.study.conftest import tiny_document
+from tests.study.data_helpers import classes_csv, write
 from tests.study.fabricate import fabricate
 from tests.study.robust_helpers import N_SMALL_RUNS, write_study
 from tests.study.test_report_schemes import _files_data, _split_column_data
@@ -247,3 +250,58 @@ def test_rerun_counts_trained_and_reused_runs(tmp_path, capsys):
     assert f"({N_SMALL_RUNS} trained now, 0 reused)" in first
     assert main(args) == 0
     assert f"({0} trained now, {N_SMALL_RUNS} reused)" in capsys.readouterr().out
+
+
+# ---------------------------------------------------------------------------------------
+# 5. separate files: a class never trained on; the same columns in another order
+
+def _files_config(tmp_path, test_text, val_text=None):
+    write(tmp_path, "train.csv", classes_csv(n=24, seed=1))
+    write(tmp_path, "test.csv", test_text)
+    data = {"source": "train.csv", "test_source": "test.csv", "target": "label"}
+    if val_text is not None:
+        write(tmp_path, "val.csv", val_text)
+        data["val_source"] = "val.csv"
+    doc = _doc()
+    doc["data"] = data
+    return parse_config(doc, base_dir=tmp_path)
+
+
+@pytest.mark.parametrize("where", ["test", "val"])
+def test_class_only_in_a_separate_file_is_refused(tmp_path, where):
+    other = classes_csv(n=12, seed=3, labels=("x", "y", "z"))
+    plain = classes_csv(n=12, seed=2)
+    config = (_files_config(tmp_path, other) if where == "test"
+              else _files_config(tmp_path, plain, val_text=other))
+    with pytest.raises(StudyConfigError) as caught:
+        load_dataset(config)
+    message = str(caught.value)
+    assert "class 'z'" in message and f"'data.{where}_source'" in message
+    assert str(tmp_path / f"{where}.csv") in message and "never trains on" in message
+
+
+def test_class_only_in_split_column_test_rows_is_refused(tmp_path):
+    n = 40
+    part = ["train" if i % 4 < 2 else "val" if i % 4 == 2 else "test" for i in range(n)]
+    labels = ["z" if p == "test" and i == 3 else ("x", "y")[i % 2]
+              for i, p in enumerate(part)]
+    text = classes_csv(n=n, extra={"part": part})
+    lines = text.splitlines()
+    lines = [lines[0]] + [",".join(line.split(",")[:2] + [labels[i]] + line.split(",")[3:])
+                          for i, line in enumerate(lines[1:])]
+    write(tmp_path, "d.csv", "\n".join(lines) + "\n")
+    doc = _doc()
+    doc["data"] = {"source": "d.csv", "target": "label", "split_column": "part"}
+    with pytest.raises(StudyConfigError, match="class 'z' .* marks 'test'"):
+        load_dataset(parse_config(doc, base_dir=tmp_path))
+
+
+def test_same_columns_in_another_order_are_matched_by_name(tmp_path):
+    plain = classes_csv(n=12, seed=2)
+    lines = [line.split(",") for line in plain.splitlines()]
+    swapped = "\n".join(",".join([r[1], r[0], r[2]]) for r in lines) + "\n"  # b,a,label
+    dataset = load_dataset(_files_config(tmp_path, swapped))
+    reference = load_dataset(_files_config(tmp_path / "ref", plain))
+    assert dataset.feature_names == ("a", "b")
+    np.testing.assert_array_equal(dataset.x, reference.x)
+    assert "matched by name" in dataset.description
