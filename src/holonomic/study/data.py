@@ -681,7 +681,8 @@ def _refuse_untrained_classes(y: np.ndarray, classes: tuple[str, ...], fixed_par
     part, row = locations[first]
     if data.split_column is not None:
         where = (f"rows of {str(part.path)!r} that 'data.split_column' = "
-                 f"{data.split_column!r} marks {str(fixed_part[first])!r} (first at {part.where(row)})")
+                 f"{data.split_column!r} marks {str(fixed_part[first])!r} (first at "
+                 f"{part.where(row)})")
         training_text = "the rows it marks 'train'"
     else:
         where = f"'data.{part.role}' {str(part.path)!r} (first at {part.where(row)})"
