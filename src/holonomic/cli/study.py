@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 import time
+import warnings
 
 __all__ = ["register"]
 
@@ -68,7 +70,51 @@ def register(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
     return parser
 
 
+@contextlib.contextmanager
+def _one_line_warnings():
+    """Show warnings as ``holonomic study: warning: MESSAGE`` (no source file or line of
+    code) while the command runs."""
+    previous = warnings.showwarning
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        print(f"holonomic study: warning: {message}", file=sys.stderr if file is None else file)
+
+    warnings.showwarning = show
+    try:
+        yield
+    finally:
+        warnings.showwarning = previous
+
+
+def _stored_keys(config, out: str, shard) -> set[str]:
+    """Keys of the runs of this command (the study, or one shard of it) already stored,
+    valid, under ``out`` (they are reused, not trained)."""
+    from holonomic.study import storage
+    from holonomic.study.runner import plan_runs
+    from holonomic.study.sharding import shard_runs
+
+    specs = plan_runs(config)
+    if shard is not None:
+        specs = shard_runs(specs, *shard)
+    try:
+        return set(storage.read_records(out, keys=[s.key for s in specs], invalid=[]))
+    except OSError:
+        return set()
+
+
+def _counts(runs: dict, reused: int, verb: str) -> str:
+    """``"10/10 runs finished (0 trained now, 10 reused)"``."""
+    trained = max(0, runs["total"] - reused)
+    return (f"{runs['ok']}/{runs['total']} runs {verb} ({trained} trained now, {reused} "
+            "reused)")
+
+
 def _main(args: argparse.Namespace) -> int:
+    with _one_line_warnings():
+        return _run(args)
+
+
+def _run(args: argparse.Namespace) -> int:
     from holonomic.study import (
         IncompleteStudyError,
         StudyConfigError,
@@ -108,6 +154,7 @@ def _main(args: argparse.Namespace) -> int:
     try:
         with terminate_on_signals():
             config = demo_config() if args.demo else load_config(args.config)
+            reused = 0 if args.report_only else len(_stored_keys(config, args.out, shard))
             if args.report_only:
                 summary = report_study(config, args.out, plots=not args.no_plots)
             else:
@@ -129,12 +176,14 @@ def _main(args: argparse.Namespace) -> int:
     elapsed = time.perf_counter() - started
     runs = summary["runs"]
     if shard is not None:
-        print(f"study {config.name}, shard {shard[0]}/{shard[1]}: {runs['ok']}/{runs['total']} "
-              f"runs finished in {elapsed:.1f} s (stored under {args.out}/runs); when every "
+        print(f"study {config.name}, shard {shard[0]}/{shard[1]}: "
+              f"{_counts(runs, reused, 'finished')} in {elapsed:.1f} s (stored under "
+              f"{args.out}/runs); when every "
               f"shard is done: holonomic study ... --out {args.out} --report-only")
         return 0
     alarms = sum(arm["runs_with_alarms"] for arm in summary["audit"].values())
-    verb = "merged" if args.report_only else "finished"
-    print(f"study {config.name}: {runs['ok']}/{runs['total']} runs {verb} in {elapsed:.1f} s; "
+    counts = (f"{runs['ok']}/{runs['total']} runs merged" if args.report_only
+              else _counts(runs, reused, "finished"))
+    print(f"study {config.name}: {counts} in {elapsed:.1f} s; "
           f"{alarms} with audit alarms; report: {args.out}/report.md")
     return 0

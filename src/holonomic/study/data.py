@@ -654,6 +654,47 @@ def _target(values: np.ndarray, kept: list[tuple[_Part, np.ndarray]], data: Data
     return numbers, (), task, note
 
 
+def _reorder_columns(part: _Part, source: _Part) -> None:
+    """Put ``part``'s feature columns (the same names as ``source``'s, in another order) in
+    ``source``'s order, matching them by name."""
+    order = [part.feature_names.index(name) for name in source.feature_names]
+    part.x, part.x_missing = part.x[:, order], part.x_missing[:, order]
+    if part.x_text is not None:
+        part.x_text = [[row[i] for i in order] for row in part.x_text]
+    part.feature_names = source.feature_names
+    part.notes = part.notes + (f"the columns of {part.path.name} are in another order than "
+                               f"those of {source.path.name}: matched by name",)
+
+
+def _refuse_untrained_classes(y: np.ndarray, classes: tuple[str, ...], fixed_part: np.ndarray,
+                              kept: list[tuple[_Part, np.ndarray]], data: DataConfig,
+                              what: str) -> None:
+    """Refuse a class with no row in the training data (``data.source`` beside separate
+    validation or test files, or the rows a split column marks ``train``): the network
+    would have an output it never trains on."""
+    training = np.isin(fixed_part, ("train", "rest"))
+    absent = sorted(set(range(len(classes))) - set(np.unique(y[training]).tolist()))
+    if not absent:
+        return
+    locations = [(part, int(row)) for part, keep in kept for row in keep]
+    first = int(np.flatnonzero(y == absent[0])[0])
+    part, row = locations[first]
+    if data.split_column is not None:
+        where = (f"rows of {str(part.path)!r} that 'data.split_column' = "
+                 f"{data.split_column!r} marks {str(fixed_part[first])!r} (first at "
+                 f"{part.where(row)})")
+        training_text = "the rows it marks 'train'"
+    else:
+        where = f"'data.{part.role}' {str(part.path)!r} (first at {part.where(row)})"
+        training_text = f"'data.source' {str(kept[0][0].path)!r}"
+    others = (f" (also without training rows: {', '.join(repr(classes[c]) for c in absent[1:])})"
+              if len(absent) > 1 else "")
+    raise _fail(f"class {classes[absent[0]]!r} of {what} appears only in {where}, never in "
+                f"the training data ({training_text}){others}: the network would have an "
+                "output it never trains on; remove those rows or add training rows of that "
+                "class")
+
+
 def _load_files(config: StudyConfig, files: list[tuple[str, Path, bytes]],
                 fingerprint: str) -> Dataset:
     data = config.data
@@ -666,6 +707,9 @@ def _load_files(config: StudyConfig, files: list[tuple[str, Path, bytes]],
             parts.append(_read_npz(path, role, content))
     source = parts[0]
     for part in parts[1:]:
+        if csv_source and part.feature_names != source.feature_names \
+                and sorted(part.feature_names) == sorted(source.feature_names):
+            _reorder_columns(part, source)
         if part.feature_names != source.feature_names:
             if csv_source:
                 mine, theirs = set(source.feature_names), set(part.feature_names)
@@ -735,6 +779,9 @@ def _load_files(config: StudyConfig, files: list[tuple[str, Path, bytes]],
         labels = {"source": source_part, "val_source": "val", "test_source": "test"}
         fixed_part = np.concatenate([np.full(len(keep), labels[part.role], dtype="<U5")
                                      for part, keep in kept])
+
+    if task == "classification" and fixed_part is not None:
+        _refuse_untrained_classes(y, classes, fixed_part, kept, data, what)
 
     n_missing = int(np.isnan(x).sum()) if data.missing == "mean" else 0
     notes = [note for part in parts for note in part.notes]

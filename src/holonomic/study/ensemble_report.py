@@ -16,7 +16,7 @@ import numpy as np
 
 from holonomic.sampling import mixing_diagnostics, rank_normalized_split_rhat
 from holonomic.study.config import StudyConfig
-from holonomic.study.stats import paired_comparison
+from holonomic.study.stats import comparison_note, paired_comparison
 
 __all__ = ["METRIC_DIRECTIONS", "ensemble_lines", "ensemble_metric_names", "ensemble_summary"]
 
@@ -133,6 +133,9 @@ def _reading(metric: str, comp: dict) -> str:
     if not (math.isfinite(comp["mean_difference"]) and math.isfinite(comp["ci_low"])
             and math.isfinite(comp["ci_high"])):
         return "no reading (non-finite values)"
+    note = comparison_note(comp)
+    if note:
+        return f"cannot tell apart ({note})"
     if comp["includes_zero"]:
         return "cannot tell apart (interval includes 0)"
     higher = comp["mean_difference"] > 0

@@ -35,8 +35,9 @@ from holonomic.study.ensemble_report import (
     ensemble_summary,
 )
 from holonomic.study.runner import RunSpec, plan_runs
-from holonomic.study.stats import paired_comparison, wilcoxon_min_p
-from holonomic.study.tasks import PARTS, Task
+from holonomic.study.stats import comparison_note, paired_comparison, wilcoxon_min_p
+from holonomic.study.tasks import PARTS, Task, metric_range
+from holonomic.study.tasks import split_metric_name as _split_name
 
 __all__ = ["LEADING_COLUMNS", "Selection", "StudyMetrics", "build_summary", "csv_columns",
            "metric_range", "report_markdown", "results_table", "select_settings",
@@ -45,8 +46,6 @@ __all__ = ["LEADING_COLUMNS", "Selection", "StudyMetrics", "build_summary", "csv
 #: First columns of ``results.csv``; the metric columns follow (:func:`csv_columns`).
 LEADING_COLUMNS = ("arm", "setting_index", "strength", "seed", "chosen", "status", "n_train",
                    "grad_evals")
-#: Metric names without split prefix whose values lie in [0, 1].
-_UNIT_INTERVAL = ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "ece")
 #: Short names for text ("test RMSE").
 _SHORT = {"accuracy": "accuracy", "balanced_accuracy": "balanced accuracy",
           "macro_f1": "macro F1", "roc_auc": "ROC AUC", "loss": "loss", "rmse": "RMSE",
@@ -57,35 +56,6 @@ FEATURES_SHOWN = 20
 WEIGHTS_HELP = ("each loads with `torch.load(path, weights_only=True)`; how to rebuild the "
                 "model and predict with it: see the `holonomic.study.trained` module "
                 "docstring")
-_PREFIXES = ("val_gap_", "gap_", "train_", "val_", "test_")
-
-
-def _split_name(name: str) -> tuple[str, str]:
-    """``"val_gap_accuracy"`` -> ``("val_gap_", "accuracy")``; ``("", name)`` otherwise."""
-    for prefix in _PREFIXES:
-        if name.startswith(prefix):
-            return prefix, name[len(prefix):]
-    if name.startswith("ece_"):
-        return name[len("ece_"):] + "_", "ece"
-    return "", name
-
-
-def metric_range(name: str) -> tuple[float, float]:
-    """The values a recorded metric can take, e.g. ``(0, 1)`` for ``test_accuracy``,
-    ``(-1, 1)`` for ``gap_accuracy``, ``(-inf, 1)`` for ``test_r2``, ``(0, inf)`` for
-    losses, errors, norms and residuals; ``(-inf, inf)`` when unknown."""
-    prefix, base = _split_name(name)
-    gap = prefix in ("gap_", "val_gap_")
-    if base in _UNIT_INTERVAL:
-        return (-1.0, 1.0) if gap else (0.0, 1.0)
-    if gap:
-        return (-math.inf, math.inf)
-    if base == "r2":
-        return (-math.inf, 1.0)
-    if base in ("rmse", "mae", "loss", "constraint_residual") or base.startswith("weight_norm") \
-            or base.startswith("mean_row_norm"):
-        return (0.0, math.inf)
-    return (-math.inf, math.inf)
 
 
 def _short(name: str) -> str:
@@ -411,15 +381,21 @@ def _data_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, An
 
 def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
                    metrics: StudyMetrics, reason: str = "") -> dict[str, Any]:
-    """One arm's verdict against the baseline on ``metric`` (a test metric)."""
+    """One arm's verdict against the baseline on ``metric`` (a test metric). A metric other
+    than the headline (the selection metric's test counterpart) names its direction."""
     label = _short(metric)
+    _, base = _split_name(metric)
+    if base != metrics.headline:
+        label += (f" (selection metric; {'higher' if metrics.higher_is_better(base) else 'lower'}"
+                  " is better)")
     if comp is None or not all(math.isfinite(comp[k]) for k in
                                ("mean_difference", "ci_low", "ci_high")):
         why = reason or "non-finite values"
         return {"arm": arm, "metric": metric, "reading": "no verdict",
                 "line": f"{arm} vs {BASELINE_ARM}, {label}: no verdict ({why})"}
     _, base = _split_name(metric)
-    if comp["ci_low"] <= 0.0 <= comp["ci_high"]:
+    note = comparison_note(comp)
+    if note or comp["ci_low"] <= 0.0 <= comp["ci_high"]:
         reading = "cannot tell apart"
     else:
         arm_higher = comp["mean_difference"] > 0
@@ -427,7 +403,8 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
     digits = _digits(metric, comp)
     line = (f"{arm} vs {BASELINE_ARM}, {label}: {reading} "
             f"({comp['mean_difference']:+.{digits}f} [{comp['ci_low']:+.{digits}f}, "
-            f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds)")
+            f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds"
+            + (f"; {note}" if note else "") + ")")
     return {"arm": arm, "metric": metric, "reading": reading,
             "mean_difference": comp["mean_difference"], "ci_low": comp["ci_low"],
             "ci_high": comp["ci_high"], "n": comp["n"], "line": line}
@@ -474,22 +451,25 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
     verdict: list[dict[str, Any]] = []
     base = chosen[BASELINE_ARM]
     headline = f"test_{metrics.headline}"
+    # the verdict: the headline metric, and the selection metric's test counterpart
+    judged = [headline] + [m for m in (f"test_{metrics.selection_base}",)
+                           if m != headline and m in metrics.compared]
     for arm in config.arms:
         sel = chosen[arm.name]
         if arm.name == BASELINE_ARM:
             continue
         if sel.index is None or base.index is None:
             who = arm.name if sel.index is None else BASELINE_ARM
-            verdict.append(_verdict_entry(arm.name, headline, None, metrics,
-                                          f"{who} has no valid setting"))
+            verdict += [_verdict_entry(arm.name, m, None, metrics, f"{who} has no valid setting")
+                        for m in judged]
             continue
         comparisons[arm.name] = {}
         for metric in metrics.compared:
             result = paired_comparison(_chosen_values(config, records, sel, metric),
                                        _chosen_values(config, records, base, metric))
             comparisons[arm.name][metric] = result.to_dict()
-        verdict.append(_verdict_entry(arm.name, headline, comparisons[arm.name][headline],
-                                      metrics))
+        verdict += [_verdict_entry(arm.name, m, comparisons[arm.name][m], metrics)
+                    for m in judged]
     larger = metrics.higher_is_better(metrics.selection_base)
     return {
         "study": config.to_dict(),
@@ -549,6 +529,9 @@ def _interval(entry: dict[str, float], digits: int = 4) -> str:
 def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics) -> str:
     if not math.isfinite(comp["mean_difference"]) or not math.isfinite(comp["ci_low"]):
         return "no reading (non-finite values)"
+    note = comparison_note(comp)
+    if note:
+        return f"the data cannot tell them apart ({note})"
     if comp["includes_zero"]:
         return "the data cannot tell them apart (the interval includes 0)"
     prefix, base = _split_name(metric)
@@ -608,8 +591,9 @@ def _setup_lines(config: StudyConfig, summary: dict[str, Any], description: str,
     described = [f"loss ({loss})" if m == "loss" else Task.describe(m) for m in metrics.metrics]
     lines += [f"- Task: {metrics.task.name}; metrics per split: {', '.join(described)}"
               + ("; ECE on validation and test" if "ece_test" in metrics.names else "") + ".",
-              f"- Split: {data['scheme']}. Features standardised with training statistics"
-              f"{'' if config.data.standardize else ' (off)'}.",
+              f"- Split: {data['scheme']}. "
+              + ("Features standardised with training statistics." if config.data.standardize
+                 else "Features not standardised."),
               f"- Training rows per run: {_count(data['n_train'])}.",
               f"- Feature columns: {_feature_text(data['feature_names'])}."]
     if data["folds"]:
@@ -626,12 +610,50 @@ def _setup_lines(config: StudyConfig, summary: dict[str, Any], description: str,
               f"{b.dtype}.",
               f"- Gradient evaluations per run: {summary['grad_evals_per_run']} "
               "(identical across arms).",
-              f"- Seeds: {list(config.seeds)}; each seed fixes the split, initial weights, "
-              "minibatch order and integrator noise, shared by every arm (paired design).",
+              f"- Seeds: {list(config.seeds)}; {_seed_text(config)}, shared by every arm "
+              "(paired design).",
               f"- Runs: {summary['runs']['total']} ({summary['runs']['ok']} finished, "
               f"{summary['runs']['failed']} failed integration steps, "
               f"{summary['runs']['diverged']} diverged).", ""]
     return lines
+
+
+def _split_fixed(config: StudyConfig) -> str:
+    """Which parts of the split are the same for every seed: ``"all"`` (a split column, or
+    separate validation and test files with every training row), ``"test"`` (a separate
+    test file: validation, or training rows, still drawn per seed) or ``"none"``."""
+    data = config.data
+    if data.scheme == "split_column":
+        return "all"
+    if data.scheme == "files":
+        return "all" if data.val_source is not None and data.train_size is None else "test"
+    return "none"
+
+
+def _seed_text(config: StudyConfig) -> str:
+    fixed = _split_fixed(config)
+    if fixed == "all":
+        return ("the split is fixed (the same for every seed); each seed fixes the initial "
+                "weights, minibatch order and integrator noise")
+    if fixed == "test":
+        return ("the test part is fixed (the same for every seed); each seed fixes the rest "
+                "of the split, initial weights, minibatch order and integrator noise")
+    return "each seed fixes the split, initial weights, minibatch order and integrator noise"
+
+
+def _split_caveat(config: StudyConfig) -> str:
+    fixed = _split_fixed(config)
+    if fixed == "all":
+        return ("The split is the same for every seed (seeds vary initial weights, batch "
+                "order and noise), so the intervals leave out split-to-split variation: "
+                "another split could give other numbers. The comparison is paired, which "
+                "removes what the arms share.")
+    if fixed == "test":
+        return ("The test part is the same for every seed; the rest of the split differs "
+                "between seeds, so the intervals include that variation but not the test "
+                "part's. The comparison is paired, which removes what the arms share.")
+    return ("Splits differ between seeds, so the intervals include split-to-split "
+            "variation; the comparison is paired, which removes what the arms share.")
 
 
 def _arm_lines(config: StudyConfig, summary: dict[str, Any]) -> list[str]:
@@ -693,7 +715,8 @@ def _chosen_table(summary: dict[str, Any], metrics: StudyMetrics) -> list[str]:
              "| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
     for name, arm in summary["arms"].items():
         if arm["chosen_index"] is None:
-            lines.append(f"| {name} | no valid setting (all failed) |"
+            lines.append(f"| {name} | no valid setting (every grid point has a failed or "
+                         "diverged seed) |"
                          + " |" * (len(header) - 2))
             continue
         c = arm["chosen"]
@@ -800,8 +823,7 @@ def _caveat_lines(config: StudyConfig, summary: dict[str, Any], metrics: StudyMe
              "- No correction for multiple comparisons (several arms, several metrics).",
              "- One data set, one model and one training budget: the ranking may change with "
              "any of them. Each grid is small; a better strength may lie outside it.",
-             "- Splits differ between seeds, so the intervals include split-to-split "
-             "variation; the comparison is paired, which removes what the arms share.",
+             f"- {_split_caveat(config)}",
              "- The max-norm arm clips after each integrator step (the common practice); the "
              "constraint arms are held on their sets inside the integrator (RATTLE).",
              "- Test metrics exist for every run in results.csv; only the chosen settings' "

@@ -9,8 +9,8 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import stats
 
-__all__ = ["PairedComparison", "expected_calibration_error", "paired_comparison",
-           "wilcoxon_min_p"]
+__all__ = ["PairedComparison", "comparison_note", "expected_calibration_error",
+           "paired_comparison", "wilcoxon_min_p"]
 
 
 def expected_calibration_error(probabilities: np.ndarray, labels: np.ndarray,
@@ -65,16 +65,40 @@ class PairedComparison:
     confidence: float
     p_wilcoxon: float
     differences: tuple[float, ...]
+    zero_spread: bool = False
 
     @property
     def includes_zero(self) -> bool:
-        return self.ci_low <= 0.0 <= self.ci_high
+        """Whether the interval fails to exclude 0. With zero spread (all differences equal
+        up to roundoff) the t interval is undefined, so it excludes nothing: True."""
+        return self.zero_spread or self.ci_low <= 0.0 <= self.ci_high
+
+    @property
+    def note(self) -> str:
+        """Why the interval says nothing ("" when it is an ordinary t interval)."""
+        if self.zero_spread:
+            return (f"all {self.n} paired differences equal: no spread to build an interval "
+                    "from")
+        return ""
 
     def to_dict(self) -> dict:
         out = asdict(self)
         out["differences"] = list(self.differences)
         out["includes_zero"] = self.includes_zero
+        out["note"] = self.note
         return out
+
+
+#: Relative size below which the sd of the differences counts as zero (roundoff).
+ZERO_SPREAD_TOLERANCE = 1e-12
+
+
+def comparison_note(comp: dict) -> str:
+    """The note of a comparison dict (``""`` for dicts made before ``zero_spread``)."""
+    if comp.get("zero_spread"):
+        return comp.get("note") or (f"all {comp.get('n', '?')} paired differences equal: "
+                                    "no spread to build an interval from")
+    return ""
 
 
 def paired_comparison(values: np.ndarray, baseline: np.ndarray,
@@ -82,7 +106,10 @@ def paired_comparison(values: np.ndarray, baseline: np.ndarray,
     r"""Compare paired samples (same seeds) by their differences ``d = values - baseline``.
 
     Interval: :math:`\bar d \pm t_{n-1, (1+c)/2}\, s_d / \sqrt{n}` from
-    ``scipy.stats.t.interval`` (exactly ``[d, d]`` when all differences are equal).
+    ``scipy.stats.t.interval``. When the differences have no spread (``s_d <=``
+    :data:`ZERO_SPREAD_TOLERANCE` ``* max(1, |mean|)``, i.e. all equal up to roundoff) the
+    t interval is undefined: it is ``[d, d]``, ``zero_spread`` is set and ``includes_zero``
+    is True, so no reader calls such a difference better or worse.
     p-value: two-sided ``scipy.stats.wilcoxon(d)``; 1.0 when every difference is zero.
     """
     values = np.asarray(values, dtype=np.float64)
@@ -97,9 +124,10 @@ def paired_comparison(values: np.ndarray, baseline: np.ndarray,
         raise ValueError(f"confidence must be in (0, 1), got {confidence}")
     d = values - baseline
     mean = float(d.mean())
-    sem = float(d.std(ddof=1) / math.sqrt(n))
-    if sem > 0.0:
-        low, high = stats.t.interval(confidence, n - 1, loc=mean, scale=sem)
+    sd = float(d.std(ddof=1))
+    zero_spread = bool(sd <= ZERO_SPREAD_TOLERANCE * max(1.0, abs(mean)))
+    if not zero_spread:
+        low, high = stats.t.interval(confidence, n - 1, loc=mean, scale=sd / math.sqrt(n))
     else:
         low = high = mean
     if np.all(d == 0.0):
@@ -109,4 +137,4 @@ def paired_comparison(values: np.ndarray, baseline: np.ndarray,
             warnings.simplefilter("ignore")
             p = float(stats.wilcoxon(d).pvalue)
     return PairedComparison(n, mean, float(low), float(high), confidence, p,
-                            tuple(float(x) for x in d))
+                            tuple(float(x) for x in d), zero_spread)

@@ -293,11 +293,69 @@ def _is_number(value: Any) -> bool:
     return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
+#: Task metrics (without split prefix) of a classification record made before tasks
+#: existed (no ``task`` key).
+_OLD_CLASSIFICATION = ("accuracy", "loss")
+
+
+def _required_metrics(record: dict[str, Any], bad) -> tuple[str, ...]:
+    """The task metric names a finished run of the record's task must hold."""
+    from holonomic.study.tasks import PARTS, Task  # lazy: tasks imports torch
+
+    name = record.get("task")
+    if name is None:  # made before tasks existed: classification, accuracy and loss
+        names = [f"{p}_{m}" for p in PARTS for m in _OLD_CLASSIFICATION]
+        names += [f"{g}_{m}" for g in ("gap", "val_gap") for m in _OLD_CLASSIFICATION]
+        return tuple(names) + ("ece_val", "ece_test")
+    n_classes = record.get("n_classes")
+    if name == "regression":
+        n_classes = 0
+    elif n_classes is None:
+        n_classes = 2 if "test_roc_auc" in record["metrics"] else 3
+    if isinstance(n_classes, bool) or not isinstance(n_classes, int):
+        raise bad(f"'n_classes' must be an integer, got {n_classes!r:.60}")
+    try:
+        return Task(str(name), n_classes).record_metrics()
+    except ValueError as exc:
+        raise bad(f"its task is not valid ({exc})") from None
+
+
+def _check_ok_metrics(record: dict[str, Any], bad) -> None:
+    """A finished run (status ok) holds every metric of its task, each a finite number
+    (ROC AUC and R^2 may be NaN: undefined on a split with one class or constant targets)
+    inside the range the metric can take."""
+    from holonomic.study.tasks import MAY_BE_UNDEFINED, metric_range, split_metric_name
+
+    metrics = record["metrics"]
+    missing = [n for n in _required_metrics(record, bad) if n not in metrics]
+    if missing:
+        raise bad(f"its status is ok but it lacks the metric(s) {', '.join(missing)} of its "
+                  f"task ({record.get('task', 'classification')})")
+    for name, value in metrics.items():
+        if value is None:
+            continue
+        prefix, base = split_metric_name(name)
+        if not math.isfinite(value):
+            if base in MAY_BE_UNDEFINED and math.isnan(value):
+                continue
+            if prefix:  # a task metric (norms and residuals are NaN where they do not apply)
+                raise bad(f"its status is ok but metric {name!r} is {value!r}, not a finite "
+                          "number")
+            continue
+        low, high = metric_range(name)
+        slack = 1e-9 * (1.0 + abs(value))  # roundoff
+        if not low - slack <= value <= high + slack:
+            raise bad(f"metric {name!r} = {value!r} is outside the values it can take "
+                      f"([{low:g}, {high:g}])")
+
+
 def validate_record(record: Any, path: str | Path) -> dict[str, Any]:
     """Check that ``record`` (read from ``path``, ``DIR/runs/<key>.json``) is a run record:
     a JSON object with the keys of :data:`REQUIRED_RECORD_KEYS` of the right types, a
     ``status`` in :data:`RUN_STATUSES`, a ``key`` equal to the file name and to the key of
-    its arm, strength and seed. Returns the record.
+    its arm, strength and seed. A finished run (status ok) must hold every metric its task
+    records, finite (ROC AUC and R^2 may be undefined) and in the range the metric can take
+    (:func:`holonomic.study.tasks.metric_range`). Returns the record.
 
     Raises:
         InvalidRunRecord: naming the file and the first thing wrong.
@@ -328,6 +386,8 @@ def validate_record(record: Any, path: str | Path) -> dict[str, Any]:
     for name in ("data_fingerprint", "message"):
         if name in record and not isinstance(record[name], str):
             raise bad(f"'{name}' must be a string, got {record[name]!r:.60}")
+    if record["status"] == "ok":
+        _check_ok_metrics(record, bad)
     stem = Path(path).stem
     if record["key"] != stem:
         raise bad(f"its 'key' {record['key']!r} does not match its file name (key {stem!r})")
@@ -351,7 +411,8 @@ def read_record(path: str | Path) -> dict[str, Any]:
     try:
         record = loads(text)
     except json.JSONDecodeError as exc:
-        raise InvalidRunRecord(path, f"it is not JSON ({exc.msg} at line {exc.lineno} column "
+        message = exc.msg[:-len(" at")] if exc.msg.endswith(" at") else exc.msg
+        raise InvalidRunRecord(path, f"it is not JSON ({message} at line {exc.lineno} column "
                                      f"{exc.colno})") from exc
     except RecursionError as exc:
         raise InvalidRunRecord(path, "it is nested too deeply") from exc

@@ -50,6 +50,7 @@ from torch.nn import functional as F
 from holonomic.study.stats import expected_calibration_error
 
 __all__ = ["ECE_BINS", "PARTS", "TASKS", "Task", "balanced_accuracy", "macro_f1",
+           "metric_range", "split_metric_name",
            "regression_scores", "roc_auc", "task_for"]
 
 TASKS = ("classification", "regression")
@@ -274,3 +275,40 @@ def task_for(name: str, n_classes: int = 0, target_mean: float = 0.0,
     if not (math.isfinite(target_std) and target_std > 0):
         raise ValueError(f"target_std must be finite and > 0, got {target_std}")
     return Task(name, n_classes, float(target_mean), float(target_std))
+
+
+#: Metric names without split prefix whose values lie in [0, 1].
+UNIT_INTERVAL = ("accuracy", "balanced_accuracy", "macro_f1", "roc_auc", "ece")
+#: Metrics (without split prefix) that are undefined (NaN) in some finished runs: ROC AUC
+#: when a split holds one class, R^2 when a split's targets are constant.
+MAY_BE_UNDEFINED = ("roc_auc", "r2")
+_PREFIXES = ("val_gap_", "gap_", "train_", "val_", "test_")
+
+
+def split_metric_name(name: str) -> tuple[str, str]:
+    """``"val_gap_accuracy"`` -> ``("val_gap_", "accuracy")``, ``"ece_test"`` ->
+    ``("test_", "ece")``; ``("", name)`` otherwise."""
+    for prefix in _PREFIXES:
+        if name.startswith(prefix):
+            return prefix, name[len(prefix):]
+    if name.startswith("ece_"):
+        return name[len("ece_"):] + "_", "ece"
+    return "", name
+
+
+def metric_range(name: str) -> tuple[float, float]:
+    """The values a recorded metric can take, e.g. ``(0, 1)`` for ``test_accuracy``,
+    ``(-1, 1)`` for ``gap_accuracy``, ``(-inf, 1)`` for ``test_r2``, ``(0, inf)`` for
+    losses, errors, norms and residuals; ``(-inf, inf)`` when unknown."""
+    prefix, base = split_metric_name(name)
+    gap = prefix in ("gap_", "val_gap_")
+    if base in UNIT_INTERVAL:
+        return (-1.0, 1.0) if gap else (0.0, 1.0)
+    if gap:
+        return (-math.inf, math.inf)
+    if base == "r2":
+        return (-math.inf, 1.0)
+    if base in ("rmse", "mae", "loss", "constraint_residual") or base.startswith("weight_norm") \
+            or base.startswith("mean_row_norm"):
+        return (0.0, math.inf)
+    return (-math.inf, math.inf)
