@@ -7,34 +7,11 @@ from pathlib import Path
 
 import numpy as np
 
-#: Six runs of seconds each (the tiny study of conftest with fewer arms), on the invented
-#: demo data.
-SMALL_TOML = """
-[study]
-name = "small"
-seeds = 2
+from tests.study.conftest import TINY_TOML
 
-[data]
-source = "demo"
-train_size = 64
-val_fraction = 0.25
-test_fraction = 0.35
-
-[model]
-widths = [8, 8]
-
-[budget]
-epochs = 3
-batch_size = 32
-lr = 0.05
-momentum = 0.9
-
-[arms.none]
-[arms.weight_decay]
-grid = [1e-3]
-[arms.fixed_norm]
-grid = [0.5]
-"""
+#: Six runs of seconds each: the tiny study of conftest (invented demo data) with fewer arms.
+SMALL_TOML = (TINY_TOML.split("[arms.none]")[0].replace('name = "tiny"', 'name = "small"')
+              + "[arms.none]\n[arms.weight_decay]\ngrid = [1e-3]\n[arms.fixed_norm]\ngrid = [0.5]\n")
 
 N_SMALL_RUNS = 6
 
