@@ -39,7 +39,7 @@ from typing import Any, Callable, Iterable
 import torch
 from torch import Tensor
 
-from holonomic.dynamics.base import NOT_TRACED, HolonomicIntegrator
+from holonomic.dynamics.base import HolonomicIntegrator
 from holonomic.dynamics.langevin import Langevin
 from holonomic.dynamics.operators import Phase, Settings, run_scheme
 from holonomic.dynamics.settings import integrator_step_and_friction, sgd_settings
@@ -303,25 +303,17 @@ class AdaptiveLangevin(Langevin):
 
     def _take_step(self) -> None:
         """The opening B A D of every group, then O and the closing A per parameter
-        (one attempt: a retry with more substeps re-runs both)."""
-        self._scratch = self._open_step()
-        super()._take_step()
-
-    @torch.compiler.disable(reason=NOT_TRACED)
-    @torch.no_grad()
-    def step(self, closure: Callable[[], Tensor] | None = None) -> Tensor | None:  # type: ignore[override]
-        """Take one step using the gradients in ``.grad`` (see the class docstring).
+        (one attempt: a retry with more substeps re-runs both), then, after the commit,
+        the closing D of every group. ``step()`` itself is the base class's, so torch's
+        step hooks fire once per step.
 
         Raises:
             IntegrationError: non-finite gradient or failed projection; nothing changed
                 (weights, momenta, generator states, thermostat frictions).
         """
-        loss = None
-        if closure is not None:
-            with torch.enable_grad():
-                loss = closure()
+        self._scratch = self._open_step()
         try:
-            super().step()  # B A D, then O, A per parameter (_take_step); commits, or raises having changed nothing
+            super()._take_step()  # O, A per parameter; commits, or raises having changed nothing
             scratch = self._scratch
         finally:
             self._scratch = None
@@ -332,4 +324,3 @@ class AdaptiveLangevin(Langevin):
                     dof=scratch["dof"][g_index], temperature=group["temperature"],
                     thermostat_mass=group["thermostat_mass"],
                     duration=0.5 * integrator_step_and_friction(group)[0])
-        return loss
