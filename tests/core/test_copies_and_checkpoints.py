@@ -311,3 +311,21 @@ def test_half_precision_weights_keep_their_constraint(dtype, projection, shape, 
     assert float(constraint.residual(layer.weight.detach())) <= torch.finfo(dtype).eps
     hn.repair(layer)
     assert float(constraint.residual(layer.weight.detach())) <= torch.finfo(dtype).eps
+
+
+def test_step_or_friction_set_on_a_group_after_construction_is_refused_not_ignored():
+    # The group holds SGD's lr and momentum; a 'step' key added later would be silently
+    # ignored by the integrator, so the step refuses it (found by a user-style review).
+    layer = nn.Linear(3, 2)
+    opt = hn.Langevin(layer.parameters(), lr=0.01)
+    layer(torch.ones(1, 3)).sum().backward()
+    before = [p.detach().clone() for p in layer.parameters()]
+    for key in ("step", "friction"):
+        opt.param_groups[0][key] = 0.5
+        with pytest.raises(ValueError, match=f"'{key}' set after construction would be ignored"):
+            opt.step()
+        del opt.param_groups[0][key]
+    opt.param_groups[0]["lr"] = "0.1"
+    with pytest.raises(ValueError, match="'lr' must be a real number, got '0.1'"):
+        opt.step()
+    assert all(torch.equal(a, b) for a, b in zip(before, layer.parameters()))

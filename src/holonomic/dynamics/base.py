@@ -284,7 +284,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
         saved_class = state_dict.get("integrator")
         if saved_class is not None and saved_class != me:
             raise ValueError(f"{me}.load_state_dict: the state dict was saved by {saved_class}, not by {me}; "
-                             f"build a {saved_class} to resume it, or start {me} from fresh state")
+                             f"build the {saved_class} to resume it, or start {me} from fresh state")
         saved_groups = state_dict["param_groups"]
         if len(saved_groups) != len(self.param_groups):
             raise ValueError(f"{me}.load_state_dict: the state dict has {len(saved_groups)} param group(s), "
@@ -404,8 +404,8 @@ class HolonomicIntegrator(torch.optim.Optimizer):
 
         ``torch.compile`` does not trace a step (:data:`NOT_TRACED`): under
         ``torch.compile(optimizer.step)`` or a compiled training function the
-        step runs eagerly (a graph break), with the same result; with
-        ``fullgraph=True`` torch raises, naming that reason.
+        step runs eagerly (a graph break), with the same result; a compiled
+        training function with ``fullgraph=True`` cannot contain it (torch raises).
         """
         check_not_replaced(self.param_groups)
         if not getattr(self, "_first_step_checked", False):
@@ -433,10 +433,19 @@ class HolonomicIntegrator(torch.optim.Optimizer):
         """
         for g_index, group in enumerate(self.param_groups):
             settings = {k: v for k, v in group.items() if k not in ("params", "param_names")}
+            stale = sorted(k for k in ("step", "friction") if k in settings)
+            if stale:
+                raise ValueError(f"param group {g_index}: {', '.join(repr(k) for k in stale)} set after "
+                                 "construction would be ignored: the group holds SGD's 'lr' and 'momentum' "
+                                 "(step and friction are converted when the group is added); set those "
+                                 "instead; nothing was changed")
             if "lr" in settings:
                 h = settings["lr"]
                 if isinstance(h, Tensor):
                     h = h.item()
+                if isinstance(h, (bool, str)) or not isinstance(h, (int, float)):
+                    raise ValueError(f"param group {g_index}: 'lr' must be a real number, got {h!r}; "
+                                     "nothing was changed")
                 try:
                     h = float(h)
                 except (TypeError, ValueError):

@@ -181,8 +181,9 @@ class Langevin(HolonomicIntegrator):
 
     ``torch.compile`` does not trace ``step()`` (a transaction that reads its
     failure flags on the host): ``torch.compile(optimizer.step)`` or a compiled
-    training function runs the step eagerly, with the same result, and
-    ``fullgraph=True`` raises naming that reason.  Compile the model instead.
+    training function runs the step eagerly, with the same result; a compiled
+    training function with ``fullgraph=True`` cannot contain it (torch raises).
+    Compile the model instead.
 
     References:
         Leimkuhler & Matthews, Proc. R. Soc. A 472 (2016) 20160138;
