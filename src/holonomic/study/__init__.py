@@ -7,8 +7,9 @@ decay), paired by seed (t interval, Wilcoxon signed-rank test with Holm's adjust
 the arms, d_z and power figures). Every run is audited (``holonomic.audit``). An arm may
 add an ensemble phase (``[arms.NAME.ensemble]``: sampling after training,
 :mod:`holonomic.study.ensemble`); the report then compares the ensemble with the trained
-network. Command line: ``holonomic study FILE.toml --out DIR`` or ``holonomic study --demo --out DIR``; on a
-cluster, ``--shard i/n`` per machine, then ``--report-only`` (docs/cluster.md).
+network. Command line: ``holonomic study FILE.toml --out DIR`` or ``holonomic study --demo
+--out DIR``; on a cluster, ``--shard i/n`` per machine, then ``--report-only``
+(docs/cluster.md).
 
 A refused command changes nothing on disk: the data, the stored runs (validated, and of
 the same study and the same data contents) and the model are checked before the output
