@@ -61,7 +61,7 @@ def test_cli_study_outputs_are_complete_and_consistent(tmp_path, tiny_config, ti
             base = [float(r["gap_accuracy"]) for r in rows
                     if r["arm"] == "weight_decay" and r["chosen"] == "true"]
             diff = np.mean([float(r["gap_accuracy"]) for r in picked]) - np.mean(base)
-            comp = summary["comparisons_vs_weight_decay"][arm.name]["gap_accuracy"]
+            comp = summary["comparisons"][arm.name]["gap_accuracy"]
             assert comp["mean_difference"] == pytest.approx(diff, abs=1e-12)
             assert f"{diff:.4f}" in report
             # the verdict at the top, recomputed from the CSV (scipy.stats.t interval)

@@ -164,7 +164,7 @@ def test_selection_counterpart_is_compared(tmp_path):
     config = _config(selection="val_roc_auc")
     records = fabricate(config, binary=True)
     summary = build_summary(config, records, select_settings(config, records))
-    assert list(summary["comparisons_vs_weight_decay"]["fixed_norm"]) == [
+    assert list(summary["comparisons"]["fixed_norm"]) == [
         "test_accuracy", "test_roc_auc", "gap_accuracy", "gap_loss"]
 
 

@@ -82,7 +82,7 @@ def test_report_says_cannot_tell_apart_for_equal_differences(tmp_path):
     row = next(line for line in text.splitlines()
                if line.startswith("| none | test_accuracy"))
     assert "cannot tell them apart (all 2 paired differences equal" in row
-    comp = summary["comparisons_vs_weight_decay"]["none"]["test_accuracy"]
+    comp = summary["comparisons"]["none"]["test_accuracy"]
     assert ensemble_reading("accuracy", comp).startswith("cannot tell apart (all 2 paired")
 
 

@@ -2,12 +2,14 @@
 
 A study trains one model per (arm, grid point, seed) with ``holonomic.Langevin`` under one
 shared budget, chooses each arm's setting on the validation split, and compares the chosen
-settings on the test split against weight decay, paired by seed (t interval and Wilcoxon
-signed-rank test). Every run is audited (``holonomic.audit``). An arm may add an ensemble
-phase (``[arms.NAME.ensemble]``: sampling after training, :mod:`holonomic.study.ensemble`);
-the report then compares the ensemble with the trained network. Command line:
-``holonomic study FILE.toml --out DIR`` or ``holonomic study --demo --out DIR``; on a
-cluster, ``--shard i/n`` per machine, then ``--report-only`` (docs/cluster.md).
+settings on the test split against the baseline arm (``study.baseline``, default weight
+decay), paired by seed (t interval, Wilcoxon signed-rank test with Holm's adjustment over
+the arms, d_z and power figures). Every run is audited (``holonomic.audit``). An arm may
+add an ensemble phase (``[arms.NAME.ensemble]``: sampling after training,
+:mod:`holonomic.study.ensemble`); the report then compares the ensemble with the trained
+network. Command line: ``holonomic study FILE.toml --out DIR`` or ``holonomic study --demo
+--out DIR``; on a cluster, ``--shard i/n`` per machine, then ``--report-only``
+(docs/cluster.md).
 
 A refused command changes nothing on disk: the data, the stored runs (validated, and of
 the same study and the same data contents) and the model are checked before the output

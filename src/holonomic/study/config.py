@@ -8,7 +8,12 @@ the README has the same list as tables):
     distinct non-negative integers; ``selection``: ``val_<metric>`` for a metric of the task
     (classification: ``accuracy``, ``balanced_accuracy``, ``macro_f1``, ``roc_auc`` (two
     classes only), ``loss``; regression: ``rmse``, ``r2``, ``mae``, ``loss``); default
-    ``val_accuracy`` or ``val_rmse`` (:func:`selection_metric`).
+    ``val_accuracy`` or ``val_rmse`` (:func:`selection_metric`); ``baseline`` (default
+    ``"weight_decay"``): the arm every other arm is compared with, seed by seed (any arm of
+    the study; that arm is required); ``min_effect`` (optional, > 0): a difference of the
+    test headline metric (accuracy, or RMSE for regression; in its units, e.g. 0.01
+    accuracy) that the report says how many seeds would be needed to detect (80% power,
+    two-sided 0.05, the observed paired sd).
 ``[data]`` (:class:`DataConfig`)
     ``source`` (default ``"digits"``; also ``breast_cancer``, ``wine``, ``diabetes``,
     ``demo`` (invented), or a ``.csv`` / ``.npz`` path relative to the study file);
@@ -33,8 +38,8 @@ the README has the same list as tables):
 ``[arms.NAME]`` (:class:`ArmConfig`), NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
     ``grid``: a list of strengths (not for ``none``; every tuned arm the same length;
     weight decay >= 0, the others > 0); ``constrain`` (max_norm, fixed_norm, orthonormal
-    only): overrides ``model.constrain``. ``[arms.weight_decay]`` is required (the
-    baseline).
+    only): overrides ``model.constrain``. The baseline arm (``study.baseline``, default
+    ``weight_decay``) is required.
 ``[arms.NAME.ensemble]`` (optional, :class:`EnsembleConfig`; not with ``data.folds``)
     ``temperature`` (> 0, required), ``samples`` (>= 4, required), ``every`` (1),
     ``burn_in`` (one epoch of steps), ``sampler`` (``"adaptive"`` | ``"langevin"``),
@@ -77,7 +82,7 @@ __all__ = [
 
 #: Arms a study may list, in the order they appear in reports.
 ARM_NAMES = ("none", "weight_decay", "max_norm", "fixed_norm", "orthonormal")
-#: Arm every other arm is compared against.
+#: Default of ``study.baseline``: the arm every other arm is compared against.
 BASELINE_ARM = "weight_decay"
 ACTIVATIONS = ("relu", "tanh", "gelu", "silu")
 SCHEDULES = ("constant", "cosine")
@@ -361,6 +366,11 @@ class StudyConfig:
     selection: str | None = None
     base_dir: str = "."
     audit_every: int = DEFAULT_AUDIT_EVERY
+    #: ``study.baseline``: the arm every other arm is compared with (an arm of the study).
+    baseline: str = BASELINE_ARM
+    #: ``study.min_effect``: a difference of the test headline metric (its units) for which
+    #: the report gives the seeds needed to detect it; None: not asked.
+    min_effect: float | None = None
 
     def arm(self, name: str) -> ArmConfig:
         for arm in self.arms:
@@ -821,8 +831,8 @@ def _parse_budget(table: Mapping[str, Any]) -> BudgetConfig:
 
 def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
     if not table:
-        raise _fail("no arms: add at least [arms.weight_decay] and one other arm; "
-                    f"allowed arms: {', '.join(ARM_NAMES)}")
+        raise _fail("no arms: add at least the baseline arm (study.baseline, default "
+                    f"{BASELINE_ARM}) and one other arm; allowed arms: {', '.join(ARM_NAMES)}")
     arms: dict[str, ArmConfig] = {}
     for name, body in table.items():
         if name not in ARM_NAMES:
@@ -867,15 +877,27 @@ def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
         if len(set(values)) != len(values):
             raise _fail(f"'arms.{name}.grid' has repeated values, got {grid!r}")
         arms[name] = ArmConfig(name, tuple(values), ensemble, constrain)
-    if BASELINE_ARM not in arms:
-        raise _fail(f"'arms.{BASELINE_ARM}' is missing: every arm is compared against weight "
-                    f"decay; add [arms.{BASELINE_ARM}] with a grid")
     tuned = {a.name: len(a.grid) for a in arms.values() if a.name != "none"}
     if len(set(tuned.values())) > 1:
         sizes = ", ".join(f"arms.{k}.grid has {v}" for k, v in tuned.items())
         raise _fail(f"every tuned arm needs the same number of grid points (a fair search); "
                     f"got {sizes}")
     return tuple(arms[name] for name in ARM_NAMES if name in arms)
+
+
+def _check_baseline(config: StudyConfig, given: bool) -> None:
+    """The baseline arm (``study.baseline``) must be one of the study's arms."""
+    names = [a.name for a in config.arms]
+    if config.baseline in names:
+        return
+    if given:
+        raise _fail(f"'study.baseline' = {config.baseline!r} is not an arm of this study; "
+                    f"allowed: the study's arms, {', '.join(names)} (or add "
+                    f"[arms.{config.baseline}])")
+    raise _fail(f"'arms.{config.baseline}' is missing: every arm is compared against the "
+                f"baseline arm (study.baseline, default {BASELINE_ARM}); add "
+                f"[arms.{config.baseline}] with a grid, or set 'study.baseline' to one of the "
+                f"study's arms: {', '.join(names)}")
 
 
 def _parse_ensemble(table: Any, where: str) -> EnsembleConfig:
@@ -915,7 +937,9 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
     _check_keys(doc, ("study", "data", "model", "budget", "arms", "audit"), "")
     base = Path(base_dir)
     study = _get_table(doc, "study")
-    _check_keys(study, ("name", "seeds", "selection"), "study")
+    _check_keys(study, ("name", "seeds", "selection", "baseline", "min_effect"), "study")
+    baseline = _get_str(study, "baseline", "study", BASELINE_ARM, ARM_NAMES)
+    min_effect = _get_float(study, "min_effect", "study", None, 0.0, None, low_open=True)
     config = StudyConfig(
         name=_get_str(study, "name", "study", default_name),
         seeds=_parse_seeds(study),
@@ -926,7 +950,10 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
         arms=_parse_arms(_get_table(doc, "arms")),
         base_dir=str(base),
         audit_every=_parse_audit(_get_table(doc, "audit")),
+        baseline=baseline,
+        min_effect=min_effect,
     )
+    _check_baseline(config, given="baseline" in study)
     if config.data.task is not None:  # data.task given: check the selection now, not at start
         selection_metric(config, config.data.task)
     folds = config.data.folds or 1

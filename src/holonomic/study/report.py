@@ -6,7 +6,11 @@ seeds (``study.selection``, any ``val_<metric>`` of the task; larger or smaller 
 a setting with a failed run is not eligible). Test metrics are computed by every run and
 stored in ``results.csv`` so that a resumed or merged study needs no recomputation, but
 they are never used for the choice; the report quotes test metrics only for the chosen
-settings.
+settings. Every other arm is compared with the baseline arm (``study.baseline``) seed by
+seed (``summary["comparisons"]``): mean difference with a 95% t interval, Wilcoxon p raw
+and Holm-adjusted over the arms per metric, Cohen's d_z, the difference detectable with 80%
+power and, with ``study.min_effect``, the seeds needed to detect that difference
+(:mod:`holonomic.study.stats`).
 
 Everything task-specific is read from the run records: the task (``record["task"]``;
 records without one are classification, as every record made before regression existed),
@@ -35,7 +39,9 @@ from holonomic.study.ensemble_report import (
     ensemble_summary,
 )
 from holonomic.study.runner import RunSpec, plan_runs
-from holonomic.study.stats import comparison_note, paired_comparison, wilcoxon_min_p
+from holonomic.study.stats import (
+    ALPHA, MAX_SEEDS, POWER, comparison_note, holm_adjust, paired_comparison, seeds_needed,
+    wilcoxon_min_p)
 from holonomic.study.tasks import PARTS, Task, metric_range
 from holonomic.study.tasks import split_metric_name as _split_name
 
@@ -380,7 +386,8 @@ def _data_summary(config: StudyConfig, records: dict[str, dict]) -> dict[str, An
 
 
 def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
-                   metrics: StudyMetrics, reason: str = "") -> dict[str, Any]:
+                   metrics: StudyMetrics, reason: str = "",
+                   baseline: str = BASELINE_ARM) -> dict[str, Any]:
     """One arm's verdict against the baseline on ``metric`` (a test metric). A metric other
     than the headline (the selection metric's test counterpart) names its direction."""
     label = _short(metric)
@@ -392,7 +399,7 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
                                ("mean_difference", "ci_low", "ci_high")):
         why = reason or "non-finite values"
         return {"arm": arm, "metric": metric, "reading": "no verdict",
-                "line": f"{arm} vs {BASELINE_ARM}, {label}: no verdict ({why})"}
+                "line": f"{arm} vs {baseline}, {label}: no verdict ({why})"}
     _, base = _split_name(metric)
     note = comparison_note(comp)
     if note or comp["ci_low"] <= 0.0 <= comp["ci_high"]:
@@ -401,7 +408,7 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
         arm_higher = comp["mean_difference"] > 0
         reading = "better" if arm_higher == metrics.higher_is_better(base) else "worse"
     digits = _digits(metric, comp)
-    line = (f"{arm} vs {BASELINE_ARM}, {label}: {reading} "
+    line = (f"{arm} vs {baseline}, {label}: {reading} "
             f"({comp['mean_difference']:+.{digits}f} [{comp['ci_low']:+.{digits}f}, "
             f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds"
             + (f"; {note}" if note else "") + ")")
@@ -449,27 +456,30 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
         arms[arm.name] = entry
     comparisons: dict[str, Any] = {}
     verdict: list[dict[str, Any]] = []
-    base = chosen[BASELINE_ARM]
+    baseline = config.baseline
+    base = chosen[baseline]
     headline = f"test_{metrics.headline}"
     # the verdict: the headline metric, and the selection metric's test counterpart
     judged = [headline] + [m for m in (f"test_{metrics.selection_base}",)
                            if m != headline and m in metrics.compared]
     for arm in config.arms:
         sel = chosen[arm.name]
-        if arm.name == BASELINE_ARM:
+        if arm.name == baseline:
             continue
         if sel.index is None or base.index is None:
-            who = arm.name if sel.index is None else BASELINE_ARM
-            verdict += [_verdict_entry(arm.name, m, None, metrics, f"{who} has no valid setting")
-                        for m in judged]
+            who = arm.name if sel.index is None else baseline
+            verdict += [_verdict_entry(arm.name, m, None, metrics, f"{who} has no valid setting",
+                                       baseline) for m in judged]
             continue
         comparisons[arm.name] = {}
         for metric in metrics.compared:
             result = paired_comparison(_chosen_values(config, records, sel, metric),
                                        _chosen_values(config, records, base, metric))
             comparisons[arm.name][metric] = result.to_dict()
-        verdict += [_verdict_entry(arm.name, m, comparisons[arm.name][m], metrics)
-                    for m in judged]
+        verdict += [_verdict_entry(arm.name, m, comparisons[arm.name][m], metrics, "",
+                                   baseline) for m in judged]
+    _add_holm(comparisons)
+    power_notes = _add_power(comparisons, headline, config.min_effect, baseline)
     larger = metrics.higher_is_better(metrics.selection_base)
     return {
         "study": config.to_dict(),
@@ -493,16 +503,74 @@ def build_summary(config: StudyConfig, records: dict[str, dict],
             "confidence": 0.95,
             "intervals": "per-arm means: t interval clipped to the range the metric can take",
             "wilcoxon_min_p": wilcoxon_min_p(len(config.seeds)),
+            "baseline": baseline,
+            "holm": "p_holm: Holm's step-down adjustment of the Wilcoxon p-values over the "
+                    "arms compared with the baseline, per metric (controls the family-wise "
+                    "error rate over the arms, per metric)",
+            "effect_size": "d_z: mean / sd of the paired differences (NaN with zero spread)",
+            "power": f"detectable_difference: smallest true mean difference a two-sided "
+                     f"paired t test at level {ALPHA:g} detects with power {POWER:g}, from the "
+                     "observed sd of the differences and the number of seeds (rough: the sd "
+                     "of a few seeds is itself uncertain)",
+            "min_effect": config.min_effect,
+            "max_seeds": MAX_SEEDS,
         },
         "runs": {"total": len(records), "ok": statuses.count("ok"),
                  "failed": statuses.count("failed"), "diverged": statuses.count("diverged")},
         "grad_evals_per_run": grad_evals,
         "arms": arms,
         "verdict": verdict,
-        "comparisons_vs_weight_decay": comparisons,
+        "baseline": baseline,
+        "comparisons": comparisons,
+        "power_notes": power_notes,
         "audit": audit_summary(config, records),
         "ensembles": ensemble_summary(config, records, chosen),
     }
+
+
+def _add_holm(comparisons: dict[str, dict[str, dict[str, Any]]]) -> None:
+    """Set ``p_holm`` of every comparison: Holm over the arms compared, per metric."""
+    metrics = {m for comps in comparisons.values() for m in comps}
+    for metric in metrics:
+        arms = [a for a in comparisons if metric in comparisons[a]]
+        adjusted = holm_adjust([comparisons[a][metric]["p_wilcoxon"] for a in arms])
+        for arm, p in zip(arms, adjusted):
+            comparisons[arm][metric]["p_holm"] = float(p)
+
+
+def _add_power(comparisons: dict[str, dict[str, dict[str, Any]]], headline: str,
+               min_effect: float | None, baseline: str) -> list[dict[str, Any]]:
+    """Seeds needed for ``min_effect`` on the headline metric (``seeds_needed``, None: more
+    than ``MAX_SEEDS`` or no spread), and a note per arm whose observed headline
+    difference is smaller than the detectable one and whose interval includes 0 (an
+    interval that excludes 0 found the difference, however small the study)."""
+    notes = []
+    for arm, comps in comparisons.items():
+        comp = comps.get(headline)
+        if comp is None:
+            continue
+        if min_effect is not None:
+            comp["min_effect"] = min_effect
+            comp["seeds_needed"] = seeds_needed(min_effect, comp["sd_difference"])
+        detectable = comp["detectable_difference"]
+        observed = comp["mean_difference"]
+        if not (math.isfinite(detectable) and math.isfinite(observed)
+                and abs(observed) < detectable and comp["includes_zero"]):
+            continue
+        digits = _digits(headline, comp)
+        line = (f"{arm} vs {baseline}, {_short(headline)}: the study was too small to detect "
+                f"a difference of this size ({observed:+.{digits}f}): it could detect about "
+                f"{detectable:.{digits}f} with {comp['n']} seeds")
+        if min_effect is not None:
+            needed = comp["seeds_needed"]
+            line += (f"; about {needed} seeds would be needed to detect {min_effect:g}"
+                     if needed is not None else
+                     f"; more than {MAX_SEEDS} seeds would be needed to detect {min_effect:g}")
+        notes.append({"arm": arm, "metric": headline, "observed": observed,
+                      "detectable": detectable, "n": comp["n"],
+                      "seeds_needed": comp.get("seeds_needed"), "min_effect": min_effect,
+                      "line": line + "."})
+    return notes
 
 
 # ---------------------------------------------------------------------------------------
@@ -526,7 +594,8 @@ def _interval(entry: dict[str, float], digits: int = 4) -> str:
             f"{_num(entry['ci_high'], digits)}]")
 
 
-def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics) -> str:
+def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics,
+             baseline: str = BASELINE_ARM) -> str:
     if not math.isfinite(comp["mean_difference"]) or not math.isfinite(comp["ci_low"]):
         return "no reading (non-finite values)"
     note = comparison_note(comp)
@@ -537,13 +606,13 @@ def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics) -> str:
     prefix, base = _split_name(metric)
     higher = comp["mean_difference"] > 0
     if prefix in ("gap_", "val_gap_"):
-        return (f"{arm} has a {'larger' if higher else 'smaller'} gap than {BASELINE_ARM} "
+        return (f"{arm} has a {'larger' if higher else 'smaller'} gap than {baseline} "
                 "(the interval excludes 0)")
     try:
         good = higher == metrics.higher_is_better(base)
     except KeyError:
-        return f"{arm} {'higher' if higher else 'lower'} than {BASELINE_ARM}"
-    return (f"{arm} {'better' if good else 'worse'} than {BASELINE_ARM} "
+        return f"{arm} {'higher' if higher else 'lower'} than {baseline}"
+    return (f"{arm} {'better' if good else 'worse'} than {baseline} "
             f"({'higher' if higher else 'lower'}; the interval excludes 0)")
 
 
@@ -566,10 +635,11 @@ def _feature_text(features: list[str] | None) -> str:
 
 def _verdict_lines(summary: dict[str, Any]) -> list[str]:
     task = summary["task"]
+    baseline = summary.get("baseline", BASELINE_ARM)
     if not summary["verdict"]:
-        return [f"**Verdict**: no arm to compare with {BASELINE_ARM}.", ""]
+        return [f"**Verdict**: no arm to compare with {baseline}.", ""]
     lines = [f"**Verdict** (test {_SHORT.get(task['headline'], task['headline'])} of the "
-             f"chosen settings, arm minus {BASELINE_ARM} paired by seed: mean difference "
+             f"chosen settings, arm minus {baseline} paired by seed: mean difference "
              f"[95% t interval]; {'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
              " is better):", ""]
     lines += [f"- {v['line']}" for v in summary["verdict"]]
@@ -678,7 +748,7 @@ def _arm_lines(config: StudyConfig, summary: dict[str, Any]) -> list[str]:
     return lines + [""]
 
 
-def _protocol_lines(metrics: StudyMetrics) -> list[str]:
+def _protocol_lines(metrics: StudyMetrics, baseline: str = BASELINE_ARM) -> list[str]:
     larger = metrics.higher_is_better(metrics.selection_base)
     lines = ["## Protocol", "",
              f"- Each arm's setting is the grid point with the best mean `{metrics.selection}` "
@@ -699,7 +769,19 @@ def _protocol_lines(metrics: StudyMetrics) -> list[str]:
               "at most 1, errors, losses and norms to at least 0. With few seeds and a large "
               "spread the symmetric t interval can reach past the range; since the true mean "
               "lies inside it, clipping never lowers the coverage. Clipped intervals are "
-              "marked `*`.", ""]
+              "marked `*`.",
+              f"- Every other arm is compared with the baseline arm `{baseline}` "
+              "(`study.baseline`), seed by seed. Holm p is Holm's step-down adjustment "
+              "(Holm 1979) of the Wilcoxon p-values over the arms compared, per metric: it "
+              "controls the family-wise error rate (the chance of calling any arm different "
+              "when none is) over the arms, for each metric separately. d_z is the mean "
+              "paired difference over its sd (Cohen's standardised effect size).",
+              f"- Power figures: `detectable (80% power)` is the smallest true mean "
+              f"difference a two-sided paired t test at level {ALPHA:g} would detect with "
+              f"probability {POWER:g} (noncentral t, scipy.stats.nct), using the observed sd "
+              "of the paired differences and the number of seeds; seeds needed for "
+              "`study.min_effect` use the same sd. With few seeds that sd is itself "
+              "uncertain, so these figures are rough.", ""]
     return lines
 
 
@@ -753,7 +835,8 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
     lines += _verdict_lines(summary)
     lines += _setup_lines(config, summary, description, metrics)
     lines += _arm_lines(config, summary)
-    lines += _protocol_lines(metrics)
+    baseline = summary.get("baseline", BASELINE_ARM)
+    lines += _protocol_lines(metrics, baseline)
     lines += ["## Validation means per setting (used for the choice)", "",
               f"| arm | grid | mean {metrics.selection} per grid point | chosen |",
               "|---|---|---|---|"]
@@ -762,20 +845,27 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
         chosen = "none valid" if arm["chosen_index"] is None else f"{arm['chosen_strength']:g}"
         lines.append(f"| {name} | {arm['grid']} | {means} | {chosen} |")
     lines += [""] + _chosen_table(summary, metrics)
-    lines += ["", "## Paired comparison against weight decay", "",
-              "Differences are arm minus weight_decay per seed (chosen settings); 95% t "
-              "interval (scipy.stats.t) and two-sided Wilcoxon signed-rank p "
-              "(scipy.stats.wilcoxon).", "",
-              "| arm | metric | mean difference [95% CI] | Wilcoxon p | reading |",
-              "|---|---|---|---|---|"]
-    for name, comps in summary["comparisons_vs_weight_decay"].items():
+    lines += ["", f"## Paired comparison against {baseline}", "",
+              f"Differences are arm minus {baseline} per seed (chosen settings); 95% t "
+              "interval (scipy.stats.t), two-sided Wilcoxon signed-rank p "
+              "(scipy.stats.wilcoxon) raw and Holm-adjusted over the arms (per metric), "
+              "Cohen's d_z, and the smallest difference detectable with 80% power (see "
+              "Protocol).", "",
+              "| arm | metric | mean difference [95% CI] | Wilcoxon p | Holm p | d_z | "
+              "detectable (80% power) | reading |",
+              "|---|---|---|---|---|---|---|---|"]
+    for name, comps in summary["comparisons"].items():
         for metric, comp in comps.items():
             lines.append(
                 f"| {name} | {metric} | {_num(comp['mean_difference'])} "
                 f"[{_num(comp['ci_low'])}, {_num(comp['ci_high'])}] | "
-                f"{_num(comp['p_wilcoxon'], 3)} | {_reading(name, metric, comp, metrics)} |")
-    if not summary["comparisons_vs_weight_decay"]:
-        lines.append("| - | - | - | - | no comparison possible |")
+                f"{_num(comp['p_wilcoxon'], 3)} | {_num(comp.get('p_holm'), 3)} | "
+                f"{_num(comp.get('d_z'), 2)} | {_num(comp.get('detectable_difference'))} | "
+                f"{_reading(name, metric, comp, metrics, baseline)} |")
+    if not summary["comparisons"]:
+        lines.append("| - | - | - | - | - | - | - | no comparison possible |")
+    if summary.get("power_notes"):
+        lines += [""] + [f"- {note['line']}" for note in summary["power_notes"]]
     lines += ensemble_lines(summary["ensembles"])
     lines += _audit_lines(config, summary["audit"])
     lines += _caveat_lines(config, summary, metrics, n_seeds)
@@ -795,10 +885,10 @@ def _in_study_order(config: StudyConfig, summary: dict[str, Any]) -> dict[str, A
     compared = summary["task"]["compared"]
     comparisons = {arm: {m: comps[m] for m in sorted(comps, key=lambda m: (
         compared.index(m) if m in compared else len(compared), m))}
-        for arm, comps in ordered(summary["comparisons_vs_weight_decay"]).items()}
+        for arm, comps in ordered(summary["comparisons"]).items()}
     return {**summary, "arms": ordered(summary["arms"]), "audit": ordered(summary["audit"]),
             "ensembles": ordered(summary["ensembles"]),
-            "comparisons_vs_weight_decay": comparisons}
+            "comparisons": comparisons}
 
 
 def _caveat_lines(config: StudyConfig, summary: dict[str, Any], metrics: StudyMetrics,

@@ -2,15 +2,23 @@
 
 from __future__ import annotations
 
+import functools
 import math
 import warnings
 from dataclasses import asdict, dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import optimize, stats
 
-__all__ = ["PairedComparison", "comparison_note", "expected_calibration_error",
-           "paired_comparison", "wilcoxon_min_p"]
+__all__ = ["PairedComparison", "cohens_dz", "comparison_note", "detectable_difference",
+           "expected_calibration_error", "holm_adjust", "paired_comparison", "paired_t_power",
+           "seeds_needed", "wilcoxon_min_p"]
+
+#: Power and two-sided level of the power figures (detectable difference, seeds needed).
+POWER = 0.8
+ALPHA = 0.05
+#: Most seeds :func:`seeds_needed` searches; beyond it it returns None ("more than this").
+MAX_SEEDS = 1000
 
 
 def expected_calibration_error(probabilities: np.ndarray, labels: np.ndarray,
@@ -66,6 +74,14 @@ class PairedComparison:
     p_wilcoxon: float
     differences: tuple[float, ...]
     zero_spread: bool = False
+    #: Standard deviation of the differences (ddof = 1).
+    sd_difference: float = math.nan
+    #: Cohen's d_z = mean / sd of the differences; NaN with zero spread.
+    d_z: float = math.nan
+    #: Smallest true mean difference a paired t test at two-sided level :data:`ALPHA`
+    #: detects with power :data:`POWER` given ``sd_difference`` and ``n``
+    #: (:func:`detectable_difference`); NaN with zero spread.
+    detectable_difference: float = math.nan
 
     @property
     def includes_zero(self) -> bool:
@@ -137,4 +153,116 @@ def paired_comparison(values: np.ndarray, baseline: np.ndarray,
             warnings.simplefilter("ignore")
             p = float(stats.wilcoxon(d).pvalue)
     return PairedComparison(n, mean, float(low), float(high), confidence, p,
-                            tuple(float(x) for x in d), zero_spread)
+                            tuple(float(x) for x in d), zero_spread, sd,
+                            cohens_dz(d), math.nan if zero_spread else
+                            detectable_difference(sd, n))
+
+
+def cohens_dz(differences: np.ndarray) -> float:
+    r"""Cohen's :math:`d_z = \bar d / s_d` of paired differences (``s_d`` with ddof 1).
+
+    NaN when the differences have no spread (as in :func:`paired_comparison`: ``s_d <=``
+    :data:`ZERO_SPREAD_TOLERANCE` ``* max(1, |mean|)``) or fewer than 2 are given.
+
+    Reference: Cohen, *Statistical Power Analysis for the Behavioral Sciences*, 2nd ed.
+    (1988), section 2.3.5 (d for paired observations; the name ``d_z`` is common usage).
+    """
+    d = np.asarray(differences, dtype=np.float64)
+    if d.size < 2 or not np.all(np.isfinite(d)):
+        return math.nan
+    mean, sd = float(d.mean()), float(d.std(ddof=1))
+    if sd <= ZERO_SPREAD_TOLERANCE * max(1.0, abs(mean)):
+        return math.nan
+    return mean / sd
+
+
+def holm_adjust(p_values) -> np.ndarray:
+    r"""Holm's step-down adjusted p-values, in the order given.
+
+    With the ``m`` p-values sorted ascending, :math:`p_{(1)} \le \dots \le p_{(m)}`,
+    :math:`\tilde p_{(i)} = \max_{j \le i} \min(1, (m - j + 1)\, p_{(j)})`. Rejecting the
+    hypotheses with :math:`\tilde p \le \alpha` controls the family-wise error rate (the
+    chance of any false rejection) at :math:`\alpha` under any dependence.
+    Non-finite entries (no p-value) stay NaN and are not counted in ``m``.
+
+    Reference: Holm, "A simple sequentially rejective multiple test procedure",
+    Scand. J. Statist. 6 (1979) 65-70.
+    """
+    p = np.asarray(p_values, dtype=np.float64).ravel()
+    out = np.full(p.shape, math.nan)
+    valid = np.flatnonzero(np.isfinite(p))
+    m = len(valid)
+    running = 0.0
+    for j, idx in enumerate(valid[np.argsort(p[valid], kind="stable")]):
+        running = max(running, min(1.0, (m - j) * p[idx]))  # j from 0: factor m - j
+        out[idx] = running
+    return out
+
+
+def paired_t_power(delta: float, sd: float, n: int, alpha: float = ALPHA) -> float:
+    r"""Power of the two-sided paired t test at level ``alpha`` with ``n`` pairs when the
+    true mean difference is ``delta`` and the differences' sd is ``sd``:
+
+    .. math:: 1 - F_{nct}(t_c; n-1, \lambda) + F_{nct}(-t_c; n-1, \lambda),\quad
+              \lambda = \delta \sqrt n / sd,\ t_c = t_{n-1, 1-\alpha/2}
+
+    (``scipy.stats.nct``).
+    """
+    df = n - 1
+    t_crit = stats.t.ppf(1.0 - alpha / 2.0, df)
+    nc = delta * math.sqrt(n) / sd
+    # lower tail F_nct(-t_c; df, nc) as sf_nct(t_c; df, -nc) (T with -nc is distributed as
+    # -T with nc): scipy 1.17's nct.cdf returns NaN far in that tail, its sf does not
+    lower = stats.nct.sf(t_crit, df, -nc)
+    if not math.isfinite(lower):
+        lower = stats.nct.cdf(-t_crit, df, nc)
+    return float(stats.nct.sf(t_crit, df, nc) + lower)
+
+
+@functools.lru_cache(maxsize=256)
+def _detectable_in_sd(n: int, power: float, alpha: float) -> float:
+    """:func:`detectable_difference` for ``sd = 1`` (it scales with sd)."""
+    high = 1.0
+    while paired_t_power(high, 1.0, n, alpha) < power:
+        high *= 2.0
+        if high > 1e6:
+            return math.inf
+    return float(optimize.brentq(lambda k: paired_t_power(k, 1.0, n, alpha) - power,
+                                 0.0, high, xtol=1e-12, rtol=1e-12))
+
+
+def detectable_difference(sd: float, n: int, power: float = POWER,
+                          alpha: float = ALPHA) -> float:
+    """Smallest true mean difference ``delta > 0`` that a two-sided paired t test at level
+    ``alpha`` with ``n`` pairs detects with probability ``power`` when the differences' sd
+    is ``sd`` (:func:`paired_t_power` solved for ``delta`` by ``scipy.optimize.brentq``).
+
+    With the *observed* sd of a few seeds this is rough: the sd is itself uncertain.
+    NaN when ``sd`` is not a positive finite number or ``n < 2``.
+    """
+    if n < 2 or not (math.isfinite(sd) and sd > 0.0):
+        return math.nan
+    return sd * _detectable_in_sd(int(n), float(power), float(alpha))
+
+
+def seeds_needed(min_effect: float, sd: float, power: float = POWER, alpha: float = ALPHA,
+                 cap: int = MAX_SEEDS) -> int | None:
+    """Smallest number of seeds ``n >= 2`` whose two-sided paired t test at level ``alpha``
+    detects a true mean difference ``min_effect`` with probability ``>= power`` when the
+    differences' sd is ``sd`` (:func:`paired_t_power`, which grows with ``n``; bisection).
+
+    None when even ``cap`` seeds are not enough, or ``sd`` / ``min_effect`` are not
+    positive finite numbers.
+    """
+    if not (math.isfinite(sd) and sd > 0.0 and math.isfinite(min_effect) and min_effect > 0):
+        return None
+    if paired_t_power(min_effect, sd, cap, alpha) < power:
+        return None
+    low, high = 1, cap  # power(low) < power (n = 1 has no test), power(high) >= power
+    while high - low > 1:
+        mid = (low + high) // 2
+        if paired_t_power(min_effect, sd, mid, alpha) >= power:
+            high = mid
+        else:
+            low = mid
+    return high
