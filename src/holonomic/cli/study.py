@@ -1,4 +1,4 @@
-"""``holonomic study``: compare constraint arms against weight decay on a data set."""
+"""``holonomic study``: compare constraint arms against a baseline arm (weight decay by default)."""
 
 from __future__ import annotations
 
@@ -13,7 +13,8 @@ __all__ = ["register"]
 _DESCRIPTION = """\
 Train one model per (arm, strength, seed) with holonomic.Langevin under one shared budget,
 choose each arm's strength on the validation split, and compare the chosen settings against
-weight decay on the test split, paired by seed (95% t interval, Wilcoxon signed-rank test).
+the baseline arm (study.baseline, weight decay by default) on the test split, paired by seed
+(95% t interval, Wilcoxon signed-rank test with Holm's adjustment over the arms).
 Writes results.csv, summary.json, report.md and PNG plots into --out, and one audit per run
 under OUT/audits. Reruns resume: runs already stored under OUT/runs are skipped.
 
@@ -41,7 +42,8 @@ _EPILOG = """exit statuses:
 def register(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
     """Add the ``study`` subcommand to ``subparsers`` and set its ``func``."""
     parser = subparsers.add_parser(
-        "study", help="compare constraints against weight decay (train, select, report)",
+        "study",
+        help="compare constraints against weight decay or another baseline arm (train, select, report)",
         description=_DESCRIPTION, epilog=_EPILOG,
         formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("config", nargs="?", metavar="FILE.toml",
