@@ -17,7 +17,8 @@ from scipy import stats
 
 from holonomic.cli import main
 from holonomic.study import StudyConfigError, parse_config, run_study
-from holonomic.study.runner import plan_runs, run_all
+from holonomic.study.execution import run_all
+from holonomic.study.runner import plan_runs
 from tests.study.conftest import counting_execute, interrupt_after
 
 OUTPUTS = ("results.csv", "summary.json", "report.md", "selection_vs_strength.png",

@@ -13,7 +13,8 @@ from scipy import stats
 
 from holonomic.study import StudyConfigError, parse_config, run_study
 from holonomic.study.ensemble import ENSEMBLE_METRICS, TRACED
-from holonomic.study.runner import plan_runs, run_all
+from holonomic.study.execution import run_all
+from holonomic.study.runner import plan_runs
 
 from tests.study.conftest import counting_execute, interrupt_after, tiny_document
 

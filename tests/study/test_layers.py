@@ -14,7 +14,8 @@ from holonomic.study import StudyConfigError, parse_config
 from holonomic.study.arms import (check_layer_selections, constraint_residual, prepare_arm,
                                   weight_norms)
 from holonomic.study.models import build_model, hidden_layers, mlp, output_layer, select_weights
-from holonomic.study.runner import RunSpec, run_all, train_run
+from holonomic.study.execution import run_all
+from holonomic.study.runner import RunSpec, train_run
 from tests.study.factories_layers import conv_only, digits_cnn, digits_cnn_bn
 
 CONVS = ["features.0.weight", "features.2.weight"]

@@ -7,7 +7,11 @@ import math
 import numpy as np
 
 from holonomic.study.report import build_summary, select_settings
-from holonomic.study.runner import _METRIC_NAMES, plan_runs
+from holonomic.study.runner import plan_runs, record_metric_names
+from holonomic.study.tasks import Task
+
+#: The metric names of a run record of a three-class study.
+_METRIC_NAMES = record_metric_names(Task("classification", 3))
 
 
 def _records(config, rng):

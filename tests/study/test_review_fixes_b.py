@@ -305,3 +305,22 @@ def test_same_columns_in_another_order_are_matched_by_name(tmp_path):
     assert dataset.feature_names == ("a", "b")
     np.testing.assert_array_equal(dataset.x, reference.x)
     assert "matched by name" in dataset.description
+
+
+def test_moving_an_invalid_k_fold_run_aside_takes_every_fold_file(tmp_path):
+    # --rerun-invalid never deletes: each fold's weights and audit must move with the record
+    # (found by the final read of the change: only <key>.pt and <key>.jsonl were moved).
+    from holonomic.study import storage
+
+    key = "fixed_norm-0.5-s0"
+    storage.runs_dir(tmp_path).mkdir(parents=True)
+    storage.audits_dir(tmp_path).mkdir(parents=True)
+    names = [f"runs/{key}.json"] + [f"runs/{key}.fold{j}.pt" for j in range(3)] + [
+        f"audits/{key}.fold{j}.jsonl" for j in range(3)]
+    other = tmp_path / "runs" / "fixed_norm-0.5-s1.fold0.pt"  # another run's file stays
+    for name in names:
+        (tmp_path / name).write_text("x")
+    other.write_text("x")
+    moved = storage.move_aside(tmp_path, [key])
+    assert sorted(str(src.relative_to(tmp_path)) for src, _ in moved) == sorted(names)
+    assert all(dst.exists() for _, dst in moved) and other.exists()

@@ -548,26 +548,3 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
              "weights_file": weights_files[i] if i < len(weights_files) else None}
             for i, r in enumerate(runs)]
     return (record, first.model) if return_model else record
-
-
-#: The classification record's metric names before tasks existed (a subset of
-#: ``record_metric_names(Task("classification", k))``); kept for readers of old records.
-_METRIC_NAMES = (
-    "train_accuracy", "val_accuracy", "test_accuracy", "train_loss", "val_loss", "test_loss",
-    "gap_accuracy", "gap_loss", "val_gap_accuracy", "val_gap_loss", "ece_val", "ece_test",
-    "weight_norm_hidden", "mean_row_norm_hidden", "weight_norm_output", "constraint_residual",
-)
-
-
-# ---------------------------------------------------------------------------------------
-# Running many runs: moved to holonomic.study.execution (these names still import from here)
-
-_MOVED_TO_EXECUTION = ("run_all", "check_compatible", "_execute", "_worker_init", "_context")
-
-
-def __getattr__(name: str):
-    if name in _MOVED_TO_EXECUTION:
-        from holonomic.study import execution
-
-        return getattr(execution, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")

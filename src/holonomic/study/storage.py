@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import contextlib
 import errno
+import glob
 import json
 import math
 import os
@@ -449,9 +450,12 @@ def read_records(out_dir: str | Path, keys: Iterable[str] | None = None,
 
 
 def run_files(out_dir: str | Path, key: str) -> list[Path]:
-    """The files of run ``key`` that exist: its record, audit and weights (``runs/<key>.pt``)."""
-    candidates = (runs_dir(out_dir) / f"{key}.json", audit_path(out_dir, key),
-                  runs_dir(out_dir) / f"{key}.pt")
+    """The files of run ``key`` that exist: its record, audit and weights (``runs/<key>.pt``),
+    and with k-fold data each fold's audit and weights (``<key>.fold<j>.jsonl`` / ``.pt``)."""
+    candidates = [runs_dir(out_dir) / f"{key}.json", audit_path(out_dir, key),
+                  runs_dir(out_dir) / f"{key}.pt"]
+    candidates += sorted(runs_dir(out_dir).glob(f"{glob.escape(key)}.fold*.pt"))
+    candidates += sorted(audits_dir(out_dir).glob(f"{glob.escape(key)}.fold*.jsonl"))
     return [path for path in candidates if path.exists()]
 
 

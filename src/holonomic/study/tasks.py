@@ -263,10 +263,6 @@ class Task:
                 out[f"ece_{part}"] = self.calibration_error(outputs[part], targets[part])
         return out
 
-    def nan_metrics(self) -> dict[str, float]:
-        """The ``metrics`` of a run that failed: every name, NaN."""
-        return {name: math.nan for name in self.record_metrics()}
-
 
 def task_for(name: str, n_classes: int = 0, target_mean: float = 0.0,
              target_std: float = 1.0) -> Task:

@@ -85,17 +85,15 @@ def weights_path(out_dir: str | Path, key: str, fold: int | None = None) -> Path
 
 
 def _write_atomic(path: Path, payload: dict[str, Any]) -> None:
-    """``torch.save`` to a temporary file in the same folder, fsync, rename onto ``path``."""
-    tmp = storage.temporary_path(path, keep_suffix=True)
-    try:
+    """``torch.save`` to a temporary file in the same folder, fsync, rename onto ``path``
+    (:func:`holonomic.study.storage.atomic_write_bytes_from`: a full disk names the file)."""
+    def write(tmp: Path) -> None:
         with open(tmp, "wb") as handle:
             torch.save(payload, handle)
             handle.flush()
             os.fsync(handle.fileno())
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
+
+    storage.atomic_write_bytes_from(path, write)
 
 
 def save_run_weights(out_dir: str | Path, spec: Any, model: nn.Module, dataset: Any,
