@@ -158,6 +158,19 @@ def check_retry_substeps(value: Any) -> int | None:
     return value
 
 
+def _settings_snapshot(settings: dict[str, Any]) -> tuple | None:
+    """A comparable copy of a group's settings (numbers, strings, None), or None when a
+    value is not a plain scalar (e.g. a tensor lr): then the settings are validated at
+    every step instead of only when they change."""
+    items = []
+    for key in sorted(settings):
+        value = settings[key]
+        if not (value is None or isinstance(value, (bool, int, float, str))):
+            return None
+        items.append((key, type(value), value))
+    return tuple(items)
+
+
 class HolonomicIntegrator(torch.optim.Optimizer):
     """Bookkeeping common to all holonomic integrators (see module docstring).
 
@@ -342,7 +355,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
     #: hook registries, which torch's own ``__getstate__`` leaves out too.
     _transient: tuple[str, ...] = (
         "_scratch_buffers", "_native_table", "_scalar_table", "_native_failed", "_compile_failed",
-        "_first_step_checked", "_optimizer_step_pre_hooks", "_optimizer_step_post_hooks",
+        "_first_step_checked", "_checked_settings", "_optimizer_step_pre_hooks", "_optimizer_step_post_hooks",
         "_optimizer_state_dict_pre_hooks", "_optimizer_state_dict_post_hooks",
         "_optimizer_load_state_dict_pre_hooks", "_optimizer_load_state_dict_post_hooks",
     )
@@ -431,8 +444,13 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             ValueError: naming the param group and setting, or the parameter;
                 nothing is changed.
         """
+        checked = self.__dict__.setdefault("_checked_settings", {})
         for g_index, group in enumerate(self.param_groups):
             settings = {k: v for k, v in group.items() if k not in ("params", "param_names")}
+            snapshot = _settings_snapshot(settings)
+            if snapshot is not None and checked.get(g_index) == snapshot:
+                self._check_momentum_shapes(g_index, group)  # settings as last validated
+                continue
             stale = sorted(k for k in ("step", "friction") if k in settings)
             if stale:
                 raise ValueError(f"param group {g_index}: {', '.join(repr(k) for k in stale)} set after "
@@ -460,15 +478,21 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             except (ValueError, KeyError) as exc:
                 raise ValueError(f"param group {g_index}: {exc} (changed after construction?); nothing "
                                  "was changed") from None
-            names = group.get("param_names")
-            for index, p in enumerate(group["params"]):
-                momentum = self.state[p].get("momentum") if p in self.state else None
-                if momentum is not None and momentum.shape != p.shape:
-                    label = step_label(p, names, g_index, index)
-                    raise ValueError(
-                        f"{label} (param group {g_index}) has shape {tuple(p.shape)} but its momentum has shape "
-                        f"{tuple(momentum.shape)}: the parameter was resized after the optimizer took steps; "
-                        "nothing was changed. Build a new optimizer for the new shapes.")
+            if snapshot is not None:
+                checked[g_index] = snapshot
+            self._check_momentum_shapes(g_index, group)
+
+    def _check_momentum_shapes(self, g_index: int, group: dict[str, Any]) -> None:
+        """Refuse a momentum whose shape differs from its parameter's (resized)."""
+        names = group.get("param_names")
+        for index, p in enumerate(group["params"]):
+            momentum = self.state[p].get("momentum") if p in self.state else None
+            if momentum is not None and momentum.shape != p.shape:
+                label = step_label(p, names, g_index, index)
+                raise ValueError(
+                    f"{label} (param group {g_index}) has shape {tuple(p.shape)} but its momentum has shape "
+                    f"{tuple(momentum.shape)}: the parameter was resized after the optimizer took steps; "
+                    "nothing was changed. Build a new optimizer for the new shapes.")
 
     #: Internal switch: ``True`` forces the plain per-parameter path, the
     #: reference that every fast path is tested against (tests/speed).
