@@ -255,3 +255,27 @@ def test_z_of_the_mean_is_explained_and_does_not_change_the_exit_status(tmp_path
     (bias,) = [g["bias"] for g in summarize(path)["groups"]]
     assert 0.015 < bias < 0.03  # 1.0 / 0.98 - 1 = 2% plus noise
     assert f"mean/T - 1 = {100 * bias:+.3g}%" in out
+
+
+def test_a_truncated_last_line_is_ignored_with_a_warning(tmp_path, capsys):
+    # A run killed while writing its audit leaves a last line without its newline: the
+    # complete records before it are still summarised (found by a user-style review); a
+    # broken line in the middle of a file is still an error.
+    import warnings
+
+    from holonomic.audit import read_audit
+
+    good = _write(tmp_path / "good.jsonl", 5)
+    text = good.read_text()
+    cut = tmp_path / "cut.jsonl"
+    cut.write_text(text + text.splitlines()[-1][:40])  # a partial copy of the last record
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        records = read_audit(cut)
+    assert any("last line is incomplete" in str(w.message) for w in caught)
+    assert len(records.records) == len(read_audit(good).records) == 5
+    middle = tmp_path / "middle.jsonl"
+    lines = text.splitlines()
+    middle.write_text("\n".join(lines[:2] + [lines[2][:40]] + lines[3:]) + "\n")
+    with pytest.raises(Exception, match="not valid JSON"):
+        read_audit(middle)

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import json
 import os
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterator, TextIO
@@ -216,6 +217,13 @@ def iter_audit(path: str | os.PathLike[str]) -> Iterator[dict[str, Any]]:
             try:
                 obj = json.loads(line)
             except json.JSONDecodeError as exc:
+                if not raw.endswith("\n") and fh.read(1) == "":
+                    # The last line, cut short without its newline: a run killed while its
+                    # audit was being written. The complete records before it are kept.
+                    warnings.warn(f"{_where(path, line_no)}: the last line is incomplete (was the run "
+                                  "interrupted while writing?); it is ignored and the complete records "
+                                  "before it are read", stacklevel=2)
+                    break
                 hint = " (the line looks truncated: was the run interrupted while writing?)" \
                     if exc.msg.startswith(("Expecting", "Unterminated")) and exc.pos >= len(line.rstrip()) - 1 \
                     else ""
@@ -253,12 +261,14 @@ def read_audit(path: str | os.PathLike[str]) -> AuditLog:
 
     Blank lines are skipped.  Records are returned in file order, each with
     every field of the current version present (``None`` where the file had
-    none) and ``"line"`` set to its line number.
+    none) and ``"line"`` set to its line number.  A last line cut short
+    without its newline (a run killed while writing) is skipped with a
+    ``UserWarning``; the complete records before it are returned.
 
     Raises:
         AuditFileError: the file is missing, a directory or empty, has no
             records, or a line is not a JSON object (e.g. truncated by a
-            crash), lacks ``step``/``parameters``, has a field of the wrong
+            crash, anywhere but at the end), lacks ``step``/``parameters``, has a field of the wrong
             type (a string where a number belongs, a list where an object
             does), or was written by a newer version; the message names the
             file, the line and the field.
