@@ -215,3 +215,53 @@ def test_failed_step_after_an_lr_change_leaves_the_momenta_alone():
     assert opt.param_groups[0]["momentum_scale"] == scale
     for p in net.parameters():
         assert torch.equal(opt.state[p]["momentum"], before[p])
+
+
+@pytest.mark.parametrize("path", ["native", "eager", "reference"])
+@pytest.mark.parametrize("schedule", ["warm-up from 0", "cosine through 0"])
+def test_zero_lr_steps_follow_sgd(path, schedule):
+    # Reference library: torch.optim.SGD. At lr = 0 SGD moves nothing but its momentum
+    # buffer keeps accumulating gradients (buf <- mu buf + g); a temperature-0 Langevin step
+    # at lr = 0 does the same, so a warm-up from lr 0 (LambdaLR) and a cosine schedule that
+    # reaches 0 and rises again follow SGD (found by a user-style review: they drifted apart).
+    torch.manual_seed(0)
+
+    def net():
+        return nn.Sequential(nn.Linear(6, 5), nn.Tanh(), nn.Linear(5, 3)).double()
+
+    ours, theirs = net(), net()
+    theirs.load_state_dict(ours.state_dict())
+    x = torch.randn(16, 6, dtype=torch.float64)
+    opt = hn.Langevin(ours.parameters(), lr=0.05, momentum=0.9, weight_decay=1e-3,
+                      compiled=False if path == "eager" else None)
+    opt._reference = path == "reference"
+    sgd = torch.optim.SGD(theirs.parameters(), lr=0.05, momentum=0.9, weight_decay=1e-3)
+
+    def make(o):
+        if schedule == "warm-up from 0":
+            return torch.optim.lr_scheduler.LambdaLR(o, lambda e: min(1.0, e / 5))
+        return torch.optim.lr_scheduler.CosineAnnealingLR(o, 10)
+
+    schedulers = make(opt), make(sgd)
+    for _ in range(30):
+        for model, o, s in ((ours, opt, schedulers[0]), (theirs, sgd, schedulers[1])):
+            o.zero_grad()
+            model(x).square().mean().backward()
+            o.step()
+            s.step()
+    for p, q in zip(ours.parameters(), theirs.parameters()):
+        assert torch.allclose(p, q, rtol=0, atol=1e-12)
+
+
+def test_zero_lr_at_positive_temperature_keeps_the_momentum():
+    # At T > 0 an lr of 0 is a step of zero time: nothing moves and the momentum is kept.
+    layer = nn.Linear(4, 3).double()
+    opt = hn.Langevin(layer.parameters(), lr=0.01, temperature=0.5, seed=1)
+    layer(torch.ones(2, 4, dtype=torch.float64)).sum().backward()
+    opt.step()
+    before = {p: opt.state[p]["momentum"].clone() for p in layer.parameters()}
+    weights = [p.detach().clone() for p in layer.parameters()]
+    opt.param_groups[0]["lr"] = 0.0
+    opt.step()
+    assert all(torch.equal(opt.state[p]["momentum"], before[p]) for p in layer.parameters())
+    assert all(torch.equal(a, b) for a, b in zip(weights, layer.parameters()))

@@ -23,7 +23,7 @@ from holonomic.dynamics.settings import (
     physics_group_to_sgd,
     sgd_settings,
 )
-from holonomic.geometry import Constraint
+from holonomic.geometry import Constraint, constraint_of
 from holonomic.geometry.base import check_positive
 
 __all__ = ["Langevin", "OverdampedLangevin"]
@@ -96,11 +96,13 @@ class Langevin(HolonomicIntegrator):
     discretisation error and the time per step.  SGD keeps its momentum buffer
     ``P / (mu h)`` when lr or momentum change, so that the stored momenta of a
     group are rescaled by ``(mu' h') / (mu h)`` (new over old settings) at the
-    first step with new settings (not when the new ``lr`` is 0, which moves
-    nothing, nor after a step with ``mu = 0``); at ``T = 0`` without
-    constraints the trajectory therefore equals ``torch.optim.SGD`` under any
-    scheduler (StepLR, OneCycleLR and CyclicLR with momentum cycling,
-    ReduceLROnPlateau, SWALR).  At ``T > 0`` a large change moves the
+    first step with new settings (not after a step with ``mu = 0``).  At
+    ``lr = 0`` nothing moves; at ``T = 0`` the momentum then accumulates the
+    force as SGD's buffer does (``buf <- mu buf + f``), and at ``T > 0`` it is
+    kept as it is (no time passes).  At ``T = 0`` without constraints the
+    trajectory therefore equals ``torch.optim.SGD`` under any scheduler
+    (StepLR, OneCycleLR and CyclicLR with momentum cycling,
+    ReduceLROnPlateau, SWALR, a warm-up from lr 0).  At ``T > 0`` a large change moves the
     kinetic temperature by the square of that factor for a while; the
     thermostat restores it in a time of order ``1/gamma``.  The settings of
     the momenta are kept in the group as ``"momentum_scale"`` (``mu h`` of
@@ -267,6 +269,9 @@ class Langevin(HolonomicIntegrator):
         written in place); returns the function that undoes it (for a failed step)."""
         undo: list[tuple[dict[str, Any], Any, list[tuple[Tensor, Tensor]]]] = []
         for group in self.param_groups:
+            if group["lr"] == 0 and group["temperature"] == 0:
+                undo.append(self._accumulate_at_zero_lr(group))
+                continue
             if not group["lr"] > 0:
                 continue  # nothing moves; the base step reports a negative lr
             h, _ = integrator_step_and_friction(group)
@@ -290,9 +295,38 @@ class Langevin(HolonomicIntegrator):
             for group, old, saved in undo:
                 group["momentum_scale"] = old
                 for p, momentum in saved:
-                    self.state[p]["momentum"] = momentum
+                    if momentum is None:
+                        self.state[p].pop("momentum", None)
+                    else:
+                        self.state[p]["momentum"] = momentum
 
         return restore
+
+    def _accumulate_at_zero_lr(self, group: dict[str, Any]
+                               ) -> tuple[dict[str, Any], Any, list[tuple[Tensor, Tensor]]]:
+        """A temperature-0 step at ``lr = 0``, as ``torch.optim.SGD`` takes it: nothing moves
+        and the momentum buffer accumulates the force, ``buf <- mu buf + f``. The stored
+        momentum is ``P = -s buf`` with ``s`` the group's ``momentum_scale`` (``mu h`` of the
+        last step that moved; 1 before any), so ``P <- mu P - s f``, projected onto the
+        tangent space of constrained parameters. Returns the undo record of
+        :meth:`_follow_settings` (new tensors are stored; nothing is written in place)."""
+        old = group.get("momentum_scale")
+        scale = old if old else 1.0
+        saved: list[tuple[Tensor, Tensor]] = []
+        for p in group["params"]:
+            if p.grad is None:
+                continue
+            state = self.state[p]
+            momentum = state.get("momentum")
+            saved.append((p, momentum))
+            force = self.force(p, group)
+            new = -scale * force if momentum is None else group["momentum"] * momentum - scale * force
+            geometry = constraint_of(p)
+            if geometry is not None:
+                new = geometry.tangent(p.detach(), new)
+            state["momentum"] = new
+        group["momentum_scale"] = scale
+        return group, old, saved
 
     def _take_step(self) -> None:
         """The compiled path (unless ``compiled=False``), else the fast path
