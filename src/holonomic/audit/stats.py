@@ -26,6 +26,7 @@ from scipy import stats
 from torch import Tensor
 
 from holonomic.geometry import Constraint
+from holonomic.geometry.base import default_residual_tolerance
 
 __all__ = [
     "kinetic_temperature",
@@ -85,14 +86,6 @@ def constraint_violations(constraint: Constraint, w: Tensor) -> Tensor:
     constraint: its residual alone (so the RMS equals the maximum).
     """
     return constraint.violations(w)
-
-
-def default_residual_tolerance(dtype: torch.dtype) -> float:
-    """``100 eps`` of ``dtype`` (1.2e-5 in float32, 2.2e-14 in float64).
-
-    Roundoff in one projection is a few ``eps`` times a modest factor; 100 is
-    a margin (common practice, no source)."""
-    return 100.0 * torch.finfo(dtype).eps
 
 
 def default_tangency_tolerance(dtype: torch.dtype) -> float:

@@ -101,6 +101,16 @@ def default_tolerance(dtype: torch.dtype) -> float:
     return 8.0 * torch.finfo(dtype).eps
 
 
+def default_residual_tolerance(dtype: torch.dtype) -> float:
+    """``100 eps`` of ``dtype`` (1.2e-5 in float32, 2.2e-14 in float64): how far off its
+    constraint set a parameter may be before the audit alarms (and a replaced parameter
+    warns); 0 for non-floating dtypes.
+
+    Roundoff in one projection is a few ``eps`` times a modest factor; 100 is
+    a margin (common practice, no source)."""
+    return 100.0 * torch.finfo(dtype).eps if dtype.is_floating_point else 0.0
+
+
 def matrix_shape(shape: torch.Size | tuple[int, ...]) -> tuple[int, int]:
     """``(rows, row length)`` of a tensor viewed as ``W.reshape(W.shape[0], -1)``."""
     return shape[0], math.prod(shape[1:])

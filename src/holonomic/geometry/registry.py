@@ -11,7 +11,7 @@ from typing import Any
 import torch
 from torch import Tensor, nn
 
-from holonomic.geometry.base import Constraint
+from holonomic.geometry.base import Constraint, default_residual_tolerance
 
 __all__ = ["constrain", "constraint_of", "residuals", "parameter_label", "check_not_replaced"]
 
@@ -119,11 +119,6 @@ class _ConstraintRecord:
             self.set(name, param, constraint, label)
 
 
-def _tolerance(dtype: torch.dtype) -> float:
-    """``100 eps`` of the dtype (the audit's default residual tolerance)."""
-    return 100.0 * torch.finfo(dtype).eps if dtype.is_floating_point else 0.0
-
-
 def _on_register(module: nn.Module, name: str, param: Tensor | None) -> None:
     """Module parameter registration hook: ``module.<name>`` was declared
     constrained and is being replaced by ``param``; carry the declaration over.
@@ -156,7 +151,7 @@ def _on_register(module: nn.Module, name: str, param: Tensor | None) -> None:
     record.set(name, param, constraint, label)
     if not param.is_meta and param.numel() and param.dtype.is_floating_point:
         residual = float(constraint.residual(param.detach()))
-        tol = _tolerance(param.dtype)
+        tol = default_residual_tolerance(param.dtype)
         if not residual <= tol:
             warnings.warn(f"{label} was replaced by a value off its constraint set ({constraint!r}): "
                           f"relative residual {residual:.3g} > {tol:.3g}; the constraint is kept, the "
