@@ -124,7 +124,7 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     if shard is not None:
         specs = shard_runs(specs, *shard)
     invalid: list[InvalidRunRecord] | None = [] if rerun_invalid else None
-    prepare_runs(config, out_dir, specs, invalid)
+    done = prepare_runs(config, out_dir, specs, invalid)
     definition = _definition(config, data_fingerprint(config))
     storage.make_output_dir(out_dir)
     storage.write_study_record(out_dir, definition, None if shard is None else shard[1])
@@ -135,10 +135,10 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
                   f"({error.problem}); its run is redone", file=sys.stderr)
         for source, target in moved:
             print(f"holonomic study: moved {str(source)!r} to {str(target)!r}", file=sys.stderr)
+    records = run_all(config, out_dir, workers=workers, progress=progress, specs=specs,
+                      done=done)
     if shard is None:
-        records = run_all(config, out_dir, workers=workers, progress=progress)
         return _write_report(config, out_dir, records, plots)
-    records = run_all(config, out_dir, workers=workers, progress=progress, specs=specs)
     statuses = [records[s.key]["status"] for s in specs]
     return {"shard": list(shard),
             "runs": {"total": len(specs), "ok": statuses.count("ok"),

@@ -362,11 +362,13 @@ def _run_pool(config: StudyConfig, pending: Sequence[RunSpec], out_dir: str, wor
 
 def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
             progress: bool = True, specs: Sequence[RunSpec] | None = None,
-            execute: Callable[[StudyConfig, RunSpec, str], str] = _execute) -> dict[str, dict]:
+            execute: Callable[[StudyConfig, RunSpec, str], str] = _execute,
+            done: dict[str, dict] | None = None) -> dict[str, dict]:
     """Run every run not yet stored under ``out_dir/runs`` and return all records.
 
     Finished runs are skipped, so an interrupted study resumes where it stopped. Nothing is
-    created or written until :func:`prepare_runs` has passed. With ``workers > 1`` runs go
+    created or written until :func:`prepare_runs` has passed (``done``: its result, when the
+    caller has already prepared these ``specs``; it is then not prepared again). With ``workers > 1`` runs go
     to a pool of processes (torch single-threaded in each) that end with the parent (see
     the module docstring). A progress bar (tqdm, to stderr) shows the count and an ETA.
 
@@ -379,7 +381,8 @@ def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     out_dir = str(out_dir)
     specs = plan_runs(config) if specs is None else list(specs)
     keys = [s.key for s in specs]
-    done = prepare_runs(config, out_dir, specs)
+    if done is None:
+        done = prepare_runs(config, out_dir, specs)
     storage.make_output_dir(out_dir)
     with storage.output_errors():
         storage.runs_dir(out_dir).mkdir(exist_ok=True)
