@@ -42,7 +42,7 @@ from holonomic.study.runner import RunSpec, plan_runs
 from holonomic.study.stats import (
     ALPHA, MAX_SEEDS, POWER, comparison_note, holm_adjust, paired_comparison, seeds_needed,
     wilcoxon_min_p)
-from holonomic.study.tasks import PARTS, Task, metric_range
+from holonomic.study.tasks import PARTS, Task, metric_range, recorded_n_classes
 from holonomic.study.tasks import split_metric_name as _split_name
 
 __all__ = ["LEADING_COLUMNS", "Selection", "StudyMetrics", "build_summary", "csv_columns",
@@ -149,8 +149,7 @@ def study_metrics(config: StudyConfig, records: dict[str, dict]) -> StudyMetrics
     first = _first_record(config, records)
     names = tuple(first["metrics"])
     name = first.get("task", "classification")
-    n_classes = 0 if name == "regression" else int(
-        first.get("n_classes") or (2 if "test_roc_auc" in names else 3))
+    n_classes = int(recorded_n_classes(name, first.get("n_classes") or None, names))
     task = Task(name, n_classes)
     metrics = tuple(m for m in task.metrics if f"test_{m}" in names)
     if not metrics:
@@ -824,7 +823,7 @@ def report_markdown(config: StudyConfig, summary: dict[str, Any], description: s
     """The report: verdict, set-up, protocol, chosen settings, tables, comparisons, caveats."""
     if metrics is None:
         t = summary["task"]
-        n_classes = 0 if t["name"] == "regression" else (2 if "roc_auc" in t["metrics"] else 3)
+        n_classes = recorded_n_classes(t["name"], None, t["metrics"])
         names = tuple(m for arm in summary["arms"].values() for m in arm.get("chosen", {}))
         names += tuple(f"{p}_{m}" for p in PARTS for m in t["metrics"])
         metrics = StudyMetrics(Task(t["name"], n_classes), tuple(t["metrics"]),

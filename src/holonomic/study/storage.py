@@ -301,18 +301,14 @@ _OLD_CLASSIFICATION = ("accuracy", "loss")
 
 def _required_metrics(record: dict[str, Any], bad) -> tuple[str, ...]:
     """The task metric names a finished run of the record's task must hold."""
-    from holonomic.study.tasks import PARTS, Task  # lazy: tasks imports torch
+    from holonomic.study.tasks import PARTS, Task, recorded_n_classes  # lazy: tasks imports torch
 
     name = record.get("task")
     if name is None:  # made before tasks existed: classification, accuracy and loss
         names = [f"{p}_{m}" for p in PARTS for m in _OLD_CLASSIFICATION]
         names += [f"{g}_{m}" for g in ("gap", "val_gap") for m in _OLD_CLASSIFICATION]
         return tuple(names) + ("ece_val", "ece_test")
-    n_classes = record.get("n_classes")
-    if name == "regression":
-        n_classes = 0
-    elif n_classes is None:
-        n_classes = 2 if "test_roc_auc" in record["metrics"] else 3
+    n_classes = recorded_n_classes(name, record.get("n_classes"), record["metrics"])
     if isinstance(n_classes, bool) or not isinstance(n_classes, int):
         raise bad(f"'n_classes' must be an integer, got {n_classes!r:.60}")
     try:

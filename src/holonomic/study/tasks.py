@@ -50,7 +50,7 @@ from torch.nn import functional as F
 from holonomic.study.stats import expected_calibration_error
 
 __all__ = ["ECE_BINS", "PARTS", "TASKS", "Task", "balanced_accuracy", "macro_f1",
-           "metric_range", "split_metric_name",
+           "metric_range", "recorded_n_classes", "split_metric_name",
            "regression_scores", "roc_auc", "task_for"]
 
 TASKS = ("classification", "regression")
@@ -262,6 +262,17 @@ class Task:
             for part in ("val", "test"):
                 out[f"ece_{part}"] = self.calibration_error(outputs[part], targets[part])
         return out
+
+
+def recorded_n_classes(task: str, n_classes: int | None, metric_names) -> int:
+    """The class count of a stored run or summary: 0 for regression, the recorded count, or
+    for records that predate it 2 when they hold a ROC AUC (binary only) and otherwise 3
+    (any count above two has the same metrics)."""
+    if task == "regression":
+        return 0
+    if n_classes is not None:
+        return n_classes
+    return 2 if any(str(m).endswith("roc_auc") for m in metric_names) else 3
 
 
 def task_for(name: str, n_classes: int = 0, target_mean: float = 0.0,
