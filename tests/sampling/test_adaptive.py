@@ -5,6 +5,8 @@ import math
 
 import pytest
 import torch
+
+import holonomic as hn
 from scipy import special
 
 from holonomic import FixedNorm, IntegrationError, Langevin, Orthonormal, constrain, residuals
@@ -193,3 +195,57 @@ def test_constructor_validation_names_the_parameter():
         AdaptiveLangevin([w], step=0.0, temperature=1.0)
     with pytest.raises(ValueError, match="projection"):
         AdaptiveLangevin([w], step=0.1, temperature=1.0, projection="straight")
+
+
+def _fixed_norm_model():
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(torch.nn.Linear(5, 4), torch.nn.Tanh(),
+                                torch.nn.Linear(4, 2)).double()
+    hn.constrain(model, **{"0.weight": hn.FixedNorm(1.0)})
+    return model
+
+
+def _trajectory(model, opt, steps=20):
+    x = torch.randn(16, 5, dtype=torch.float64, generator=torch.Generator().manual_seed(1))
+    y = torch.arange(16) % 2
+    for _ in range(steps):
+        opt.zero_grad()
+        torch.nn.functional.cross_entropy(model(x), y).backward()
+        opt.step()
+    return torch.cat([p.detach().flatten() for p in model.parameters()])
+
+
+def test_fixed_friction_groups_are_plain_langevin():
+    """adaptive=False: D is skipped and xi = A, so B A O A is Langevin's BAOAB step with its
+    exact Ornstein-Uhlenbeck O (same noise stream): equal to roundoff in float64."""
+    model = _fixed_norm_model()
+    plain = _trajectory(model, hn.Langevin(model.parameters(), lr=0.01, momentum=0.9,
+                                           temperature=0.05, seed=3, compiled=False))
+    model = _fixed_norm_model()
+    fixed = _trajectory(model, hn.AdaptiveLangevin(model.parameters(), lr=0.01, momentum=0.9,
+                                                   temperature=0.05, seed=3, adaptive=False))
+    assert torch.allclose(plain, fixed, rtol=0, atol=1e-12)
+
+
+def test_mixed_groups_adapt_only_where_asked():
+    """An adaptive first layer and a fixed-friction output layer at temperature 0: the fixed
+    group's friction stays at A = -ln(momentum)/h, the adaptive one moves."""
+    model = _fixed_norm_model()
+    opt = hn.AdaptiveLangevin(
+        [{"params": model[0].parameters(), "temperature": 0.05},
+         {"params": model[2].parameters(), "temperature": 0.0, "adaptive": False}],
+        lr=0.01, momentum=0.9, seed=3)
+    start = opt.thermostat_friction()
+    _trajectory(model, opt)
+    h = math.sqrt(2 * 0.01 / 1.9)
+    assert opt.thermostat_friction()[1] == pytest.approx(-math.log(0.9) / h, rel=1e-12)
+    assert opt.thermostat_friction()[0] != pytest.approx(start[0], rel=1e-6)
+    assert hn.residuals(model)["0.weight"] < 1e-12
+
+
+def test_adaptive_flag_is_checked():
+    model = _fixed_norm_model()
+    with pytest.raises(ValueError, match="adaptive must be True"):
+        hn.AdaptiveLangevin(model.parameters(), lr=0.01, adaptive="no")
+    with pytest.raises(ValueError, match="temperature"):
+        hn.AdaptiveLangevin(model.parameters(), lr=0.01, temperature=0.0)

@@ -138,8 +138,15 @@ class AdaptiveLangevin(Langevin):
             ``A = 0`` (``momentum = 1``) gives a pure Nose-Hoover thermostat driven by the
             gradient noise alone (not ergodic without that noise).
         temperature: ``T > 0`` (default 1; the thermostat targets :math:`|P|^2 = N_f T`;
-            use :class:`holonomic.Langevin` for ``T = 0`` optimisation).
+            use :class:`holonomic.Langevin` for ``T = 0`` optimisation). A group with
+            ``adaptive=False`` may have ``T = 0``.
         thermostat_mass: ``m > 0``; larger is slower and smoother.
+        adaptive: ``True`` (default): the group's friction adapts as above. ``False``
+            (usually set per param group): the group's friction stays at ``A`` (D is
+            skipped, :math:`\xi = A` follows ``lr`` and ``momentum``), so the O step is
+            the exact Ornstein-Uhlenbeck step of :class:`holonomic.Langevin`,
+            ``P <- Pi_W(e^{-Ah} P + sqrt(T (1 - e^{-2Ah})) eta)``: plain Langevin dynamics
+            for that group (e.g. the output layer) while the thermostat adapts elsewhere.
         projection: ``"rattle"`` or ``"geodesic"``, as for :class:`holonomic.Langevin`.
         seed: seed of the integrator's own generator.
         dataset_size: multiplies the gradient.
@@ -171,6 +178,7 @@ class AdaptiveLangevin(Langevin):
         friction: float | None = None,
         temperature: float = 1.0,
         thermostat_mass: float = 1.0,
+        adaptive: bool = True,
         projection: str = "rattle",
         seed: int = 0,
         dataset_size: float | None = None,
@@ -180,7 +188,7 @@ class AdaptiveLangevin(Langevin):
     ) -> None:
         lr, momentum = sgd_settings(lr, momentum, step, friction)
         defaults = dict(lr=lr, momentum=momentum, temperature=temperature,
-                        thermostat_mass=thermostat_mass,
+                        thermostat_mass=thermostat_mass, adaptive=adaptive,
                         projection=projection, dataset_size=dataset_size,
                         weight_decay=weight_decay, substeps=substeps)
         self._validate_group(defaults)
@@ -193,7 +201,12 @@ class AdaptiveLangevin(Langevin):
     # -- groups ------------------------------------------------------------------------
     def _validate_group(self, group: dict[str, Any]) -> None:
         super()._validate_group(group)  # Langevin's checks (lr, momentum, projection, ...)
-        group["temperature"] = check_positive("temperature", group["temperature"])
+        adaptive = group.setdefault("adaptive", True)
+        if not isinstance(adaptive, bool):
+            raise ValueError(f"adaptive must be True (the friction adapts) or False (fixed "
+                             f"friction: plain Langevin for the group), got {adaptive!r}")
+        if adaptive:
+            group["temperature"] = check_positive("temperature", group["temperature"])
         if group["momentum"] == 0.0:
             raise ValueError("momentum must be > 0 for AdaptiveLangevin (momentum 0 is an "
                              "infinite friction; the friction is the initial thermostat "
@@ -251,7 +264,7 @@ class AdaptiveLangevin(Langevin):
             if not group["lr"] > 0:  # lr == 0 skips the group; lr < 0 is reported by the base step()
                 continue
             h = self._settings(group).step
-            if not group["temperature"] > 0:
+            if group["adaptive"] and not group["temperature"] > 0:
                 raise ValueError(f"param group {g_index}: AdaptiveLangevin needs temperature "
                                  f"> 0, got {group['temperature']!r}; use Langevin for T = 0")
             settings = self._settings(group)
@@ -270,6 +283,10 @@ class AdaptiveLangevin(Langevin):
                            settings=settings, generator=None)
                 phases[p] = (g_index, phase)
                 dof[g_index] += geometry.tangent_dof(p.shape)
+            if not group["adaptive"]:  # fixed friction A, following lr and momentum
+                self._xi[g_index] = torch.full_like(self._xi[g_index], settings.friction)
+                xi_half[g_index] = self._xi[g_index]
+                continue
             xi_half[g_index] = update_thermostat_friction(
                 self._xi[g_index], [phases[p][1].p for p in members], dof=dof[g_index],
                 temperature=settings.temperature, thermostat_mass=group["thermostat_mass"],
@@ -318,7 +335,7 @@ class AdaptiveLangevin(Langevin):
         finally:
             self._scratch = None
         for g_index, group in enumerate(self.param_groups):  # closing D, after the commit
-            if scratch["kinetic"][g_index]:
+            if scratch["kinetic"][g_index] and group["adaptive"]:
                 self._xi[g_index] = update_thermostat_friction(
                     scratch["xi_half"][g_index], scratch["kinetic"][g_index],
                     dof=scratch["dof"][g_index], temperature=group["temperature"],
