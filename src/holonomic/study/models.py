@@ -27,12 +27,15 @@ _ACTIVATIONS = {"relu": nn.ReLU, "tanh": nn.Tanh, "gelu": nn.GELU, "silu": nn.Si
 
 
 def mlp(in_features: int, widths: tuple[int, ...], n_classes: int,
-        activation: str = "relu") -> nn.Sequential:
-    """``Linear -> activation`` per width, then a ``Linear`` output layer (logits)."""
+        activation: str = "relu", dropout: float | None = None) -> nn.Sequential:
+    """``Linear -> activation`` per width (``-> nn.Dropout(dropout)`` unless None),
+    then a ``Linear`` output layer (logits)."""
     layers: list[nn.Module] = []
     previous = in_features
     for width in widths:
         layers += [nn.Linear(previous, width), _ACTIVATIONS[activation]()]
+        if dropout is not None:
+            layers.append(nn.Dropout(dropout))
         previous = width
     layers.append(nn.Linear(previous, n_classes))
     return nn.Sequential(*layers)
@@ -140,9 +143,13 @@ def _name_of(function) -> str:
 
 
 def build_model(config: ModelConfig, in_features: int, n_classes: int, seed: int,
-                dtype: torch.dtype = torch.float32) -> nn.Module:
+                dtype: torch.dtype = torch.float32, dropout: float | None = None) -> nn.Module:
     """Build the model with initial weights fixed by ``seed``.
 
+    ``dropout`` (the ``dropout`` regulariser's rate; None: none asked): the MLP gets
+    ``nn.Dropout(dropout)`` after each hidden activation (the initial weights are those of
+    the MLP without it); a factory's model gets ``p = dropout`` on each of its
+    ``nn.Dropout`` modules, and is refused (:class:`StudyConfigError`) when it has none.
     The global torch RNG is seeded inside :func:`torch.random.fork_rng`, so the caller's
     global RNG state is left as it was.
     """
@@ -151,7 +158,17 @@ def build_model(config: ModelConfig, in_features: int, n_classes: int, seed: int
         if config.factory is not None:
             model = _call_factory(config.factory, in_features, n_classes)
         else:
-            model = mlp(in_features, config.widths, n_classes, config.activation)
+            model = mlp(in_features, config.widths, n_classes, config.activation, dropout)
+    if dropout is not None and config.factory is not None:
+        layers = [m for m in model.modules() if isinstance(m, nn.Dropout)]
+        if not layers:
+            raise StudyConfigError(
+                f"study config: regulariser 'dropout' needs nn.Dropout modules in the model; "
+                f"'model.factory' {config.factory!r} builds none. Add nn.Dropout layers to "
+                "the factory's model (their rate is set by the arm's strength), or use the "
+                "built-in MLP (model.widths)")
+        for layer in layers:
+            layer.p = float(dropout)
     return model.to(dtype)
 
 
