@@ -52,10 +52,12 @@ def test_wrong_type_or_value(tiny_doc, section, key, value, needle):
 
 
 def test_unknown_arm_lists_allowed(tiny_doc):
-    tiny_doc["arms"]["dropout"] = {"grid": [0.1, 0.2]}
+    # an arm named after no regulariser must name one; the message lists them all
+    tiny_doc["arms"]["heavy_ball"] = {"grid": [0.1, 0.2]}
     message = _error(tiny_doc)
-    assert "'arms.dropout'" in message
-    assert "none, weight_decay, max_norm, fixed_norm, orthonormal" in message
+    assert "'arms.heavy_ball.regulariser' is missing" in message
+    assert ("none, weight_decay, decoupled_weight_decay, max_norm, fixed_norm, orthonormal, "
+            "dropout") in message
 
 
 def test_empty_grid(tiny_doc):

@@ -13,7 +13,13 @@ the README has the same list as tables):
     the study; that arm is required); ``min_effect`` (optional, > 0): a difference of the
     test headline metric (accuracy, or RMSE for regression; in its units, e.g. 0.01
     accuracy) that the report says how many seeds would be needed to detect (80% power,
-    two-sided 0.05, the observed paired sd).
+    two-sided 0.05, the observed paired sd); ``trials`` (>= 1; default: the grid size when
+    every searched arm is a grid of one size, else 4): trials of every arm with a search
+    space (an arm with everything fixed gets 1); ``search`` (``"sobol"`` | ``"halton"``,
+    default ``"sobol"``): the ``scipy.stats.qmc`` sequence for ranges, scrambled with the
+    first seed; ``halving`` (``false`` | ``true`` | ``{fraction = f}``, 0 < f < 1, default
+    0.25 with ``true``): successive halving (every trial first trains ``round(f * epochs)``
+    epochs, the better half per arm is rerun in full; not with ``--shard``).
 ``[data]`` (:class:`DataConfig`)
     ``source`` (default ``"digits"``; also ``breast_cancer``, ``wine``, ``diabetes``,
     ``demo`` (invented), or a ``.csv`` / ``.npz`` path relative to the study file);
@@ -35,11 +41,29 @@ the README has the same list as tables):
     ``friction`` (1.0), ``temperature`` (0.0), ``schedule`` (``"constant"`` |
     ``"cosine"``), ``projection`` (``"rattle"`` | ``"geodesic"``), ``dtype``
     (``"float32"`` | ``"float64"``).
-``[arms.NAME]`` (:class:`ArmConfig`), NAME in none, weight_decay, max_norm, fixed_norm, orthonormal
-    ``grid``: a list of strengths (not for ``none``; every tuned arm the same length;
-    weight decay >= 0, the others > 0); ``constrain`` (max_norm, fixed_norm, orthonormal
-    only): overrides ``model.constrain``. The baseline arm (``study.baseline``, default
-    ``weight_decay``) is required.
+``[arms.NAME]`` (:class:`ArmConfig`; NAME: letters, digits, ``_``; reports follow file order)
+    A recipe. ``regulariser`` (default: NAME when NAME is one): ``none``, ``weight_decay``,
+    ``decoupled_weight_decay``, ``max_norm``, ``fixed_norm``, ``orthonormal``, ``dropout``
+    (:mod:`holonomic.study.regularisers`); ``optimiser`` (default ``"langevin"``):
+    ``langevin``, ``adaptive_langevin``, ``overdamped_langevin``, ``sgd``, ``adamw``
+    (:mod:`holonomic.study.optimisers`; combinations that cannot work are refused, naming
+    what to use instead); ``constrain`` (``max_norm``, ``fixed_norm``, ``orthonormal``
+    only): overrides ``model.constrain``; fixed values ``strength`` (the regulariser's:
+    weight decays >= 0, dropout in [0, 1), the others > 0), ``lr`` (> 0), ``momentum``
+    ([0, 1)), ``temperature`` (>= 0), each only where the recipe has it (default: the
+    budget's); ``search.KEY`` for those keys: a list of values or a range ``{low, high,
+    scale}`` (``scale`` ``"log"`` (default) | ``"linear"``); ``grid``: the old name of
+    ``search.strength`` (a list). An arm with neither ``search`` nor ``grid`` searches its
+    strength over the regulariser's default range and ``lr`` over [budget lr / 10, budget
+    lr * 3] (log), except in a study where some arm gives ``grid``: there it is fixed (one
+    trial). The baseline arm (``study.baseline``, default ``weight_decay``) is required.
+``[[arms.NAME.groups]]`` (optional, :class:`GroupConfig`; per-layer settings, torch param groups)
+    ``layers`` (required): ``"hidden"``, ``"hidden+output"``, ``"output"`` (those layers'
+    weights and biases) or a list of ``fnmatch`` patterns over parameter names; the first
+    group matching a parameter takes it, the rest form the arm's default group. Then the
+    optimiser's keys: ``lr`` or ``lr_scale``, ``momentum``, ``temperature`` or
+    ``temperature_scale`` (scales multiply the trial's value), ``adaptive``
+    (``adaptive_langevin`` only: ``false`` keeps the friction fixed, T = 0 allowed).
 ``[arms.NAME.ensemble]`` (optional, :class:`EnsembleConfig`; not with ``data.folds``)
     ``temperature`` (> 0, required), ``samples`` (>= 4, required), ``every`` (1),
     ``burn_in`` (one epoch of steps), ``sampler`` (``"adaptive"`` | ``"langevin"``),
@@ -58,6 +82,7 @@ import csv
 import hashlib
 import json
 import math
+import re
 try:
     import tomllib
 except ModuleNotFoundError:  # Python 3.10: the same parser, packaged as tomli
@@ -99,6 +124,10 @@ DEFAULT_SELECTION = {"classification": "val_accuracy", "regression": "val_rmse"}
 #: its state every step (cheap: no host synchronisation) and writes a record every
 #: ``every`` steps plus one at the end of the run.
 DEFAULT_AUDIT_EVERY = 50
+#: ``study.trials`` when no study file gives it and the arms are not grids of one size.
+DEFAULT_TRIALS = 4
+#: ``study.halving = true``: the fraction of the epochs every trial first trains for.
+DEFAULT_HALVING_FRACTION = 0.25
 #: Built-in data sources and their task (``data.task`` must agree when given).
 BUILTIN_TASKS = {"digits": "classification", "demo": "classification",
                  "breast_cancer": "classification", "wine": "classification",
@@ -112,21 +141,8 @@ SAMPLERS = ("adaptive", "langevin")
 #: Named layer selections of ``[model] constrain`` / ``[arms.NAME] constrain`` (besides a list
 #: of parameter-name patterns); see :class:`ModelConfig`.
 LAYER_SELECTIONS = ("hidden", "hidden+output")
-#: Arms whose weights a layer selection applies to (weight decay acts on every parameter).
-SELECTING_ARMS = ("max_norm", "fixed_norm", "orthonormal")
 #: Fewest samples of an ensemble phase: the mixing diagnostics need 4 draws per chain.
 MIN_ENSEMBLE_SAMPLES = 4
-
-_STRENGTH_MEANING = {
-    "none": "no strength (one setting)",
-    "weight_decay": "L2 coefficient lambda: force += lambda * w (all parameters)",
-    "max_norm": "ball radius c: each selected unit's incoming weights (a row; a conv output "
-                "channel's kernel) clipped to |w| <= c",
-    "fixed_norm": "row radius r: each selected unit's incoming weights (a row; a conv output "
-                  "channel's kernel) held at |w| = r",
-    "orthonormal": "scale s: selected weights (conv kernels as out x in*k matrices) held at "
-                   "W W^T = s^2 I (rows) or W^T W = s^2 I",
-}
 
 
 class StudyConfigError(ValueError):
@@ -327,18 +343,49 @@ class EnsembleConfig:
 
 
 @dataclass(frozen=True)
+class GroupConfig:
+    """One ``[[arms.NAME.groups]]`` entry: per-layer settings of the arm's optimiser (a
+    torch param group). ``layers``: ``"hidden"``, ``"hidden+output"``, ``"output"`` or
+    ``fnmatch`` patterns over qualified parameter names (weights and biases); the first
+    group that matches a parameter takes it, the rest form the arm's default group.
+    ``settings``: the group's keys (``lr``, ``lr_scale``, ``momentum``, ``temperature``,
+    ``temperature_scale``, ``adaptive``) as given."""
+
+    layers: str | tuple[str, ...]
+    settings: tuple[tuple[str, Any], ...] = ()
+
+    def as_dict(self) -> dict[str, Any]:
+        return dict(self.settings)
+
+
+@dataclass(frozen=True)
 class ArmConfig:
-    """One arm: a regulariser and its grid of strengths (``(0.0,)`` for ``none``), an
-    optional sampling phase after training (:class:`EnsembleConfig`), and, for
-    ``max_norm``, ``fixed_norm`` and ``orthonormal`` only, ``constrain``: which weights the
-    arm acts on, with the values of ``[model] constrain`` (``"hidden"``, ``"hidden+output"``
-    or a list of parameter-name patterns; see :class:`ModelConfig`). ``None`` (the default,
-    key omitted) follows ``[model] constrain``."""
+    """One arm: a training recipe (:mod:`holonomic.study.regularisers`,
+    :mod:`holonomic.study.optimisers`) and the trials of its search space.
+
+    Attributes:
+        name: the arm's name (``[arms.NAME]``).
+        ensemble: optional sampling phase after training (:class:`EnsembleConfig`).
+        constrain: layer selection of ``max_norm``, ``fixed_norm``, ``orthonormal``
+            (``None``: ``[model] constrain``).
+        regulariser: a name of :data:`holonomic.study.regularisers.REGULARISERS`.
+        optimiser: a name of :data:`holonomic.study.optimisers.OPTIMISERS`.
+        fixed: hyperparameters the arm fixes (``strength``, ``lr``, ``momentum``,
+            ``temperature``), as ``(key, value)`` pairs.
+        search: the searched keys: ``(key, tuple of values)`` or ``(key, Range)``.
+        groups: per-layer settings (:class:`GroupConfig`).
+        trials: the points the study trains (:class:`holonomic.study.search.Trial`).
+    """
 
     name: str
-    grid: tuple[float, ...]
     ensemble: EnsembleConfig | None = None
     constrain: str | tuple[str, ...] | None = None
+    regulariser: str = ""
+    optimiser: str = "langevin"
+    fixed: tuple[tuple[str, float], ...] = ()
+    search: tuple[tuple[str, Any], ...] = ()
+    groups: tuple[GroupConfig, ...] = ()
+    trials: tuple[Any, ...] = ()
 
     def layer_selection(self, model: "ModelConfig") -> tuple[str | tuple[str, ...], str]:
         """``(selection, config key it comes from)``: this arm's override, or the study's
@@ -348,8 +395,47 @@ class ArmConfig:
         return model.constrain, "model.constrain"
 
     @property
+    def grid(self) -> tuple[float, ...]:
+        """The strength of each trial (0 where the regulariser has none): the old grid of
+        an arm that searches only its strength."""
+        return tuple(float(t.settings.get("strength", 0.0)) for t in self.trials)
+
+    @property
     def meaning(self) -> str:
-        return _STRENGTH_MEANING[self.name]
+        from holonomic.study.regularisers import REGULARISERS
+
+        return REGULARISERS[self.regulariser].meaning
+
+    @property
+    def plain(self) -> bool:
+        """An arm as studies had them before recipes: named after its regulariser (one of
+        :data:`ARM_NAMES`), ``holonomic.Langevin`` with the budget's settings, at most its
+        strength searched or fixed, no groups."""
+        return (self.name == self.regulariser and self.name in ARM_NAMES
+                and self.optimiser == "langevin" and not self.groups
+                and all(k == "strength" for k, _ in self.fixed)
+                and all(k == "strength" for k, _ in self.search))
+
+    def recipe(self) -> dict[str, Any]:
+        """The recipe as plain data (regulariser, optimiser, fixed values, search space,
+        groups)."""
+        return {"regulariser": self.regulariser, "optimiser": self.optimiser,
+                "fixed": dict(self.fixed),
+                "search": {k: (v.to_dict() if hasattr(v, "to_dict") else list(v))
+                           for k, v in self.search},
+                "groups": [{"layers": g.layers if isinstance(g.layers, str) else list(g.layers),
+                            **g.as_dict()} for g in self.groups]}
+
+    def recipe_fingerprint(self) -> str | None:
+        """Hash of what changes this arm's runs besides its trial settings (regulariser,
+        optimiser, fixed values, groups); None for a :attr:`plain` arm (whose runs predate
+        recipes). Stored in run records and checked when a study resumes."""
+        if self.plain:
+            return None
+        recipe = self.recipe()
+        del recipe["search"]  # the trial's settings are in the run key
+        text = json.dumps(recipe, sort_keys=True, default=str)
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
 
 
 @dataclass(frozen=True)
@@ -371,6 +457,12 @@ class StudyConfig:
     #: ``study.min_effect``: a difference of the test headline metric (its units) for which
     #: the report gives the seeds needed to detect it; None: not asked.
     min_effect: float | None = None
+    #: ``study.trials``: trials of every arm with a search space (the equal budget).
+    trials: int = DEFAULT_TRIALS
+    #: ``study.search``: ``"sobol"`` or ``"halton"`` (scipy.stats.qmc) for ranges.
+    search: str = "sobol"
+    #: ``study.halving``: the rung's fraction of the epochs (successive halving), or None.
+    halving: float | None = None
 
     def arm(self, name: str) -> ArmConfig:
         for arm in self.arms:
@@ -452,6 +544,11 @@ class StudyConfig:
         constrain = {a.name: a.constrain for a in self.arms if a.constrain is not None}
         if constrain:  # per-arm layer selections ([arms.NAME] constrain), when given
             out["arm_constrain"] = constrain
+        if not all(a.plain for a in self.arms) or self.halving is not None:
+            # absent for studies of plain arms: their definitions stay as they were
+            out["recipes"] = {a.name: a.recipe() for a in self.arms}
+            out["trials"] = {"per_arm": self.trials, "search": self.search,
+                             "halving": self.halving}
         return out
 
 
@@ -829,60 +926,281 @@ def _parse_budget(table: Mapping[str, Any]) -> BudgetConfig:
     )
 
 
-def _parse_arms(table: Mapping[str, Any]) -> tuple[ArmConfig, ...]:
-    if not table:
-        raise _fail("no arms: add at least the baseline arm (study.baseline, default "
-                    f"{BASELINE_ARM}) and one other arm; allowed arms: {', '.join(ARM_NAMES)}")
-    arms: dict[str, ArmConfig] = {}
-    for name, body in table.items():
-        if name not in ARM_NAMES:
-            raise _fail(f"unknown arm 'arms.{name}'; allowed arms: {', '.join(ARM_NAMES)}")
-        if not isinstance(body, Mapping):
-            raise _fail(f"'arms.{name}' must be a table ([arms.{name}]), got {body!r}")
-        ensemble = None
-        if "ensemble" in body:
-            ensemble = _parse_ensemble(body["ensemble"], f"arms.{name}.ensemble")
-        if "constrain" in body and name not in SELECTING_ARMS:
-            what = ("weight decay acts on every parameter" if name == "weight_decay"
-                    else "the none arm changes no weight")
-            raise _fail(f"'arms.{name}.constrain' has no effect: {what}; 'constrain' applies "
-                        f"to {', '.join(SELECTING_ARMS)} (remove it here)")
-        constrain = None
-        if "constrain" in body:
-            constrain = _parse_layer_selection(body["constrain"], f"arms.{name}.constrain")
-        if name == "none":
-            _check_keys(body, ("ensemble",), "arms.none")
-            arms[name] = ArmConfig(name, (0.0,), ensemble)
+#: Keys of ``[arms.NAME]``.
+_ARM_KEYS = ("regulariser", "optimiser", "constrain", "strength", "lr", "momentum",
+             "temperature", "search", "grid", "groups", "ensemble")
+#: Hyperparameters an arm may fix or search (strength: the regulariser's).
+_SETTING_KEYS = ("strength", "lr", "momentum", "temperature")
+#: Keys of ``[[arms.NAME.groups]]`` (the optimiser decides which apply).
+_GROUP_KEYS = ("layers", "lr", "lr_scale", "momentum", "temperature", "temperature_scale",
+               "adaptive")
+#: Named selections a group's ``layers`` may give besides patterns.
+GROUP_SELECTIONS = ("hidden", "hidden+output", "output")
+_ARM_NAME = re.compile(r"^[A-Za-z0-9_]+$")
+
+
+def _number(value: Any, key: str) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        raise _fail(f"'{key}' must be a number, got {value!r} ({_type_name(value)})")
+    value = float(value)
+    if not math.isfinite(value):
+        raise _fail(f"'{key}' must be finite, got {value}")
+    return value
+
+
+def _check_setting(name: str, value: float, key: str, regulariser: Any) -> float:
+    """A value of a hyperparameter, checked against its allowed interval."""
+    from holonomic.study.optimisers import HYPERPARAMETERS
+
+    if name == "strength":
+        return regulariser.check_strength(value, key)
+    spec = HYPERPARAMETERS[name]
+    if not spec.ok(value):
+        raise _fail(f"'{key}' = {value!r}: {name} ({spec.meaning}) must be {spec.allowed()}")
+    return value
+
+
+def _parse_search_value(value: Any, name: str, key: str, regulariser: Any) -> Any:
+    """A list of values, or a range table ``{low, high, scale}``."""
+    from holonomic.study.search import SCALES, Range
+
+    if isinstance(value, list):
+        if not value:
+            raise _fail(f"'{key}' is empty; give at least one value or a range "
+                        "{low = ..., high = ..., scale = \"log\" | \"linear\"}")
+        values = tuple(_check_setting(name, _number(v, key), key, regulariser) for v in value)
+        if len(set(values)) != len(values):
+            raise _fail(f"'{key}' has repeated values, got {value!r}")
+        return values
+    if isinstance(value, Mapping):
+        _check_keys(value, ("low", "high", "scale"), key)
+        for bound in ("low", "high"):
+            if bound not in value:
+                raise _fail(f"'{key}.{bound}' is missing; a range needs low and high (and "
+                            f"scale: {', '.join(SCALES)}; default log)")
+        low = _check_setting(name, _number(value["low"], f"{key}.low"), f"{key}.low",
+                             regulariser)
+        high = _check_setting(name, _number(value["high"], f"{key}.high"), f"{key}.high",
+                              regulariser)
+        scale = _get_str(value, "scale", key, "log", SCALES)
+        if not low < high:
+            raise _fail(f"'{key}' needs low < high, got low = {low}, high = {high}")
+        if scale == "log" and low <= 0:
+            raise _fail(f"'{key}.low' must be > 0 on scale \"log\", got {low}; use scale = "
+                        "\"linear\" or a positive low")
+        return Range(low, high, scale)
+    raise _fail(f"'{key}' must be a list of values or a range {{low, high, scale}}, got "
+                f"{value!r}")
+
+
+def _parse_groups(value: Any, where: str, optimiser: Any) -> tuple[GroupConfig, ...]:
+    """``[[arms.NAME.groups]]``: per-layer settings of the arm's optimiser."""
+    if not isinstance(value, list) or not all(isinstance(g, Mapping) for g in value):
+        raise _fail(f"'{where}' must be an array of tables ([[{where}]]), got {value!r}")
+    allowed = ("layers",) + optimiser.group_keys
+    groups = []
+    for i, group in enumerate(value):
+        key = f"{where}[{i}]"
+        for name in group:
+            if name not in _GROUP_KEYS:
+                raise _fail(f"unknown key '{key}.{name}'; allowed keys in [[{where}]]: "
+                            f"{', '.join(_GROUP_KEYS)}")
+            if name not in allowed:
+                raise _fail(f"'{key}.{name}' does not apply to optimiser "
+                            f"{optimiser.name!r}; allowed keys for it: {', '.join(allowed)}")
+        if "layers" not in group:
+            raise _fail(f"'{key}.layers' is missing; give {', '.join(GROUP_SELECTIONS)} or a "
+                        "list of parameter-name patterns such as [\"0.*\"]")
+        layers = group["layers"]
+        if isinstance(layers, str):
+            if layers not in GROUP_SELECTIONS:
+                raise _fail(f"'{key}.layers' must be one of {', '.join(GROUP_SELECTIONS)} or "
+                            f"a list of parameter-name patterns, got {layers!r}")
+        else:
+            layers = _parse_layer_selection(layers, f"{key}.layers")
+        settings = []
+        for name in _GROUP_KEYS[1:]:
+            if name not in group:
+                continue
+            if name == "adaptive":
+                settings.append((name, _get_bool(group, name, key, True)))
+                continue
+            base = name.removesuffix("_scale")
+            if name.endswith("_scale"):
+                if base in group:
+                    raise _fail(f"'{key}' gives both {base} and {name}; give one (absolute, "
+                                "or a factor times the arm's value)")
+                factor = _number(group[name], f"{key}.{name}")
+                if not factor > 0:
+                    raise _fail(f"'{key}.{name}' must be > 0, got {factor}")
+                settings.append((name, factor))
+            else:
+                settings.append((name, _check_setting(
+                    name, _number(group[name], f"{key}.{name}"), f"{key}.{name}", None)))
+        if len(settings) == 0:
+            raise _fail(f"'{key}' sets nothing; give at least one of "
+                        f"{', '.join(k for k in allowed if k != 'layers')}")
+        groups.append(GroupConfig(layers, tuple(settings)))
+    return tuple(groups)
+
+
+def _parse_arm(name: str, body: Any, uses_grid: bool, defaults: Mapping[str, float]) -> ArmConfig:
+    """One ``[arms.NAME]`` table without its trials (:func:`_plan_arm_trials` adds them)."""
+    from holonomic.study.optimisers import OPTIMISERS
+    from holonomic.study.regularisers import REGULARISERS
+    from holonomic.study.search import Range
+
+    where = f"arms.{name}"
+    if not _ARM_NAME.match(name):
+        raise _fail(f"arm name {name!r} ('{where}') may hold only letters, digits and _; "
+                    f"e.g. [arms.sgd_weight_decay]")
+    if not isinstance(body, Mapping):
+        raise _fail(f"'{where}' must be a table ([{where}]), got {body!r}")
+    _check_keys(body, _ARM_KEYS, where)
+    if "regulariser" in body:
+        regulariser = _get_str(body, "regulariser", where, None, tuple(REGULARISERS))
+    elif name in REGULARISERS:
+        regulariser = name
+    else:
+        raise _fail(f"'{where}.regulariser' is missing (the arm's name is not a regulariser); "
+                    f"allowed: {', '.join(REGULARISERS)}")
+    optimiser = _get_str(body, "optimiser", where, "langevin", tuple(OPTIMISERS))
+    reg, opt = REGULARISERS[regulariser], OPTIMISERS[optimiser]
+    if reg.optimisers is not None and optimiser not in reg.optimisers:
+        raise _fail(f"'{where}': regulariser {regulariser!r} does not work with optimiser "
+                    f"{optimiser!r}; allowed optimisers for it: {', '.join(reg.optimisers)}. "
+                    + reg.instead.format(opt=repr(optimiser)))
+    ensemble = None
+    if "ensemble" in body:
+        ensemble = _parse_ensemble(body["ensemble"], f"{where}.ensemble")
+        if optimiser != "langevin" and optimiser != "adaptive_langevin":
+            raise _fail(f"'{where}.ensemble' samples with the holonomic samplers after "
+                        f"training with a Langevin optimiser; optimiser {optimiser!r} is not "
+                        "one: use optimiser = \"langevin\" or \"adaptive_langevin\", or remove "
+                        f"[{where}.ensemble]")
+    constrain = None
+    if "constrain" in body:
+        if not reg.selects_layers:
+            selecting = ", ".join(n for n, r in REGULARISERS.items() if r.selects_layers)
+            what = ("weight decay acts on every parameter" if "weight_decay" in regulariser
+                    else f"the {regulariser} regulariser acts on no selected weight")
+            raise _fail(f"'{where}.constrain' has no effect: {what}; 'constrain' applies "
+                        f"to {selecting} (remove it here)")
+        constrain = _parse_layer_selection(body["constrain"], f"{where}.constrain")
+    settable = opt.hyperparameters + (("strength",) if reg.has_strength else ())
+    fixed = []
+    for key in _SETTING_KEYS:
+        if key not in body:
             continue
-        _check_keys(body, ("grid", "ensemble", "constrain"), f"arms.{name}")
-        if "grid" not in body:
-            raise _fail(f"'arms.{name}.grid' is missing; give a list of strengths "
-                        f"({_STRENGTH_MEANING[name]})")
+        if key not in settable:
+            raise _fail(f"'{where}.{key}' does not apply: {_no_such_setting(key, reg, opt)}; "
+                        f"settable for this arm: {', '.join(settable)}")
+        fixed.append((key, _check_setting(key, _number(body[key], f"{where}.{key}"),
+                                          f"{where}.{key}", reg)))
+    search: dict[str, Any] = {}
+    if "grid" in body:
+        if not reg.has_strength:
+            raise _fail(f"unknown key '{where}.grid': the {regulariser} regulariser has no "
+                        "strength to search; remove it")
+        if "strength" in body or "strength" in (body.get("search") or {}):
+            raise _fail(f"'{where}.grid' is the old name of 'search.strength'; give one of "
+                        "grid, search.strength or strength")
         grid = body["grid"]
         if not isinstance(grid, list):
-            raise _fail(f"'arms.{name}.grid' must be a list of numbers, got {grid!r}")
+            raise _fail(f"'{where}.grid' must be a list of numbers, got {grid!r}")
         if not grid:
-            raise _fail(f"'arms.{name}.grid' is empty; give at least one strength "
-                        f"({_STRENGTH_MEANING[name]})")
-        values = []
-        for value in grid:
-            if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise _fail(f"'arms.{name}.grid' must hold numbers, got {value!r}")
-            value = float(value)
-            if not math.isfinite(value) or value < 0 or (name != "weight_decay" and value == 0):
-                lowest = ">= 0" if name == "weight_decay" else "> 0"
-                raise _fail(f"'arms.{name}.grid' values must be finite and {lowest}, "
-                            f"got {value}")
-            values.append(value)
-        if len(set(values)) != len(values):
-            raise _fail(f"'arms.{name}.grid' has repeated values, got {grid!r}")
-        arms[name] = ArmConfig(name, tuple(values), ensemble, constrain)
-    tuned = {a.name: len(a.grid) for a in arms.values() if a.name != "none"}
-    if len(set(tuned.values())) > 1:
-        sizes = ", ".join(f"arms.{k}.grid has {v}" for k, v in tuned.items())
-        raise _fail(f"every tuned arm needs the same number of grid points (a fair search); "
-                    f"got {sizes}")
-    return tuple(arms[name] for name in ARM_NAMES if name in arms)
+            raise _fail(f"'{where}.grid' is empty; give at least one strength ({reg.meaning})")
+        search["strength"] = _parse_search_value(grid, "strength", f"{where}.grid", reg)
+    if "search" in body:
+        table = body["search"]
+        if not isinstance(table, Mapping):
+            raise _fail(f"'{where}.search' must be a table (search.lr = ...), got {table!r}")
+        for key, value in table.items():
+            if key not in settable:
+                allowed = ", ".join(settable)
+                raise _fail(f"'{where}.search.{key}' cannot be searched for this arm; allowed: "
+                            f"{allowed}")
+            if key in body:
+                raise _fail(f"'{where}.{key}' is fixed and 'search.{key}' searches it; give "
+                            "one")
+            search[key] = _parse_search_value(value, key, f"{where}.search.{key}", reg)
+    fixed_keys = {k for k, _ in fixed}
+    if "grid" not in body and "search" not in body and not uses_grid:
+        # a one-line arm: the default space (strength on its default range, lr around the
+        # budget's), minus what the arm fixes
+        if reg.has_strength and "strength" not in fixed_keys:
+            search["strength"] = Range(*reg.default_range, "log")
+        if "lr" not in fixed_keys:
+            search["lr"] = Range(defaults["lr"] / 10.0, defaults["lr"] * 3.0, "log")
+    if reg.has_strength and "strength" not in fixed_keys and "strength" not in search:
+        raise _fail(f"'{where}.strength' is needed: the {regulariser} regulariser has a "
+                    f"strength ({reg.meaning}); give strength = ..., search.strength or grid")
+    groups = ()
+    if "groups" in body:
+        groups = _parse_groups(body["groups"], f"{where}.groups", opt)
+    return ArmConfig(name, ensemble, constrain, regulariser, optimiser, tuple(fixed),
+                     tuple(sorted(search.items())), groups)
+
+
+def _no_such_setting(key: str, reg: Any, opt: Any) -> str:
+    if key == "strength":
+        return f"the {reg.name} regulariser has no strength"
+    return f"optimiser {opt.name!r} ({opt.built_as}) has no {key}"
+
+
+def _parse_arms(table: Mapping[str, Any], defaults: Mapping[str, float],
+                ) -> tuple[ArmConfig, ...]:
+    """Every ``[arms.NAME]`` in file order, without trials."""
+    if not table:
+        raise _fail("no arms: add at least the baseline arm (study.baseline, default "
+                    f"{BASELINE_ARM}) and one other arm; e.g. [arms.weight_decay] and "
+                    "[arms.fixed_norm]")
+    uses_grid = any(isinstance(body, Mapping) and "grid" in body for body in table.values())
+    return tuple(_parse_arm(name, body, uses_grid, defaults) for name, body in table.items())
+
+
+def _plan_arm_trials(arms: tuple[ArmConfig, ...], trials: int | None, method: str,
+                     seed: int) -> tuple[tuple[ArmConfig, ...], int]:
+    """Draw each arm's trials (:func:`holonomic.study.search.search_points`) and check the
+    equal budget: every arm with a search space gets ``trials`` trials (``None``: the size
+    of the grids when every searched arm is a grid of one size, else
+    :data:`DEFAULT_TRIALS`)."""
+    from dataclasses import replace
+
+    from holonomic.study.search import Range, Trial, search_points
+
+    def is_grid(arm: ArmConfig) -> bool:
+        return bool(arm.search) and all(not isinstance(v, Range) for _, v in arm.search)
+
+    def grid_size(arm: ArmConfig) -> int:
+        return math.prod(len(v) for _, v in arm.search)
+
+    given = trials is not None
+    if trials is None:
+        searched = [a for a in arms if a.search]
+        sizes = {grid_size(a) for a in searched if is_grid(a)}
+        if searched and all(is_grid(a) for a in searched) and len(sizes) == 1:
+            trials = sizes.pop()
+        elif searched and all(is_grid(a) for a in searched):
+            listed = ", ".join(f"arms.{a.name} has {grid_size(a)}" for a in searched)
+            raise _fail("every tuned arm needs the same number of grid points (a fair "
+                        f"search: 'study.trials' each); got {listed}")
+        else:
+            trials = DEFAULT_TRIALS
+    out = []
+    for arm in arms:
+        if is_grid(arm) and grid_size(arm) != trials:
+            source = "'study.trials'" if given else "the other arms' grids"
+            raise _fail(f"'arms.{arm.name}': its grid has {grid_size(arm)} points but every "
+                        f"arm gets {trials} trials ({source}); give {trials} grid points, or "
+                        "ranges {low, high, scale} (sampled), or set 'study.trials'")
+        points = search_points(dict(arm.search), trials, method, seed)
+        searched = tuple(k for k, _ in arm.search)
+        fixed = dict(arm.fixed)
+        out.append(replace(arm, trials=tuple(
+            Trial(arm.name, i, {**fixed, **point}, searched)
+            for i, point in enumerate(points))))
+    return tuple(out), trials
 
 
 def _check_baseline(config: StudyConfig, given: bool) -> None:
@@ -927,6 +1245,19 @@ def _parse_audit(table: Mapping[str, Any]) -> int:
     return _get_int(table, "every", "audit", DEFAULT_AUDIT_EVERY, minimum=1)
 
 
+def _parse_halving(study: Mapping[str, Any]) -> float | None:
+    """``study.halving``: false (default), true (fraction 0.25) or ``{fraction = f}``."""
+    value = study.get("halving", False)
+    if isinstance(value, bool):
+        return DEFAULT_HALVING_FRACTION if value else None
+    if isinstance(value, Mapping):
+        _check_keys(value, ("fraction",), "study.halving")
+        return _get_float(value, "fraction", "study.halving", DEFAULT_HALVING_FRACTION,
+                          0.0, 1.0, low_open=True, high_open=True)
+    raise _fail(f"'study.halving' must be true, false or a table {{fraction = f}} with "
+                f"0 < f < 1; got {value!r}")
+
+
 def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
                  default_name: str = "study") -> StudyConfig:
     """Validate a parsed TOML document and return a :class:`StudyConfig`.
@@ -934,24 +1265,37 @@ def parse_config(doc: Mapping[str, Any], *, base_dir: str | Path = ".",
     Raises:
         StudyConfigError: naming the offending key and the allowed values.
     """
+    from holonomic.study.optimisers import budget_defaults
+    from holonomic.study.search import SEARCH_METHODS
+
     _check_keys(doc, ("study", "data", "model", "budget", "arms", "audit"), "")
     base = Path(base_dir)
     study = _get_table(doc, "study")
-    _check_keys(study, ("name", "seeds", "selection", "baseline", "min_effect"), "study")
-    baseline = _get_str(study, "baseline", "study", BASELINE_ARM, ARM_NAMES)
+    _check_keys(study, ("name", "seeds", "selection", "baseline", "min_effect", "trials",
+                        "search", "halving"), "study")
+    baseline = _get_str(study, "baseline", "study", BASELINE_ARM)
     min_effect = _get_float(study, "min_effect", "study", None, 0.0, None, low_open=True)
+    seeds = _parse_seeds(study)
+    budget = _parse_budget(_get_table(doc, "budget"))
+    method = _get_str(study, "search", "study", "sobol", SEARCH_METHODS)
+    arms, trials = _plan_arm_trials(
+        _parse_arms(_get_table(doc, "arms"), budget_defaults(budget)),
+        _get_int(study, "trials", "study", None, minimum=1), method, seeds[0])
     config = StudyConfig(
         name=_get_str(study, "name", "study", default_name),
-        seeds=_parse_seeds(study),
+        seeds=seeds,
         selection=_get_str(study, "selection", "study", None, SELECTION_METRICS),
         data=_parse_data(_get_table(doc, "data"), base),
         model=_parse_model(_get_table(doc, "model")),
-        budget=_parse_budget(_get_table(doc, "budget")),
-        arms=_parse_arms(_get_table(doc, "arms")),
+        budget=budget,
+        arms=arms,
         base_dir=str(base),
         audit_every=_parse_audit(_get_table(doc, "audit")),
         baseline=baseline,
         min_effect=min_effect,
+        trials=trials,
+        search=method,
+        halving=_parse_halving(study),
     )
     _check_baseline(config, given="baseline" in study)
     if config.data.task is not None:  # data.task given: check the selection now, not at start

@@ -3,12 +3,14 @@
 Layout of ``--out DIR``::
 
     DIR/study.json                           the study definition (see write_study_record)
-    DIR/runs/<arm>-<strength>-s<seed>.json   one finished run each (written atomically)
-    DIR/audits/<arm>-<strength>-s<seed>.jsonl  that run's audit (renamed into place)
+    DIR/runs/<key>.json                      one finished run each (written atomically)
+    DIR/audits/<key>.jsonl                   that run's audit (renamed into place)
     DIR/results.csv, summary.json, report.md, *.png   (unsharded runs and --report-only)
     DIR/invalid/<time>/runs/..., audits/...  run files set aside by --rerun-invalid
 
-A run's file name depends only on its arm, strength and seed, so processes that split the
+A run's key (:func:`run_key`: ``<arm>-<strength>-s<seed>`` for an arm that sets at most
+its strength, ``<arm>-t<trial>-<hash of its settings>-s<seed>`` otherwise) depends only on
+its arm, trial settings, seed and budget fraction, so processes that split the
 run list between them (shards, workers) never write the same file, and merging is a
 directory listing. Every file is written to a hidden temporary file in the same directory
 and then renamed with :func:`os.replace`, so an interrupted study leaves either the old file
@@ -26,6 +28,7 @@ from __future__ import annotations
 import contextlib
 import errno
 import glob
+import hashlib
 import json
 import math
 import os
@@ -33,7 +36,7 @@ import re
 import socket
 import time
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterable, Iterator, Mapping
 
 from holonomic.study.config import StudyConfigError
 
@@ -54,9 +57,30 @@ REQUIRED_RECORD_KEYS = ("key", "arm", "strength", "seed", "status", "metrics", "
 RERUN_INVALID_FLAG = "--rerun-invalid"
 
 
-def run_key(arm: str, strength: float, seed: int) -> str:
-    """File-name key of a run, unique per (arm, strength, seed), e.g. ``fixed_norm-0.5-s3``."""
-    return f"{arm}-{float(strength)!r}-s{seed}"
+def run_key(arm: str, settings: Mapping[str, float] | float, seed: int,
+            budget_fraction: float = 1.0, trial: int = 0) -> str:
+    """File-name key of a run.
+
+    ``settings``: the trial's own settings (:attr:`holonomic.study.search.Trial.settings`;
+    a number means ``{"strength": number}``). An arm whose trial sets at most its strength
+    (the arms of studies before recipes) keeps the old key ``f"{arm}-{strength!r}-s{seed}"``
+    (e.g. ``fixed_norm-0.5-s3``; strength 0.0 when absent); any other trial is
+    ``f"{arm}-t{trial}-{hash}-s{seed}"``, ``hash`` the first 8 hex digits of the SHA-256 of
+    the settings as canonical JSON (sorted keys, floats). A successive-halving rung run
+    (``budget_fraction < 1``) adds ``-h{fraction}``.
+    """
+    if not isinstance(settings, Mapping):
+        settings = {"strength": float(settings)}
+    if set(settings) <= {"strength"}:
+        key = f"{arm}-{float(settings.get('strength', 0.0))!r}-s{seed}"
+    else:
+        text = json.dumps({k: float(v) for k, v in settings.items()}, sort_keys=True,
+                          separators=(",", ":"))
+        digest = hashlib.sha256(text.encode()).hexdigest()[:8]
+        key = f"{arm}-t{int(trial)}-{digest}-s{seed}"
+    if budget_fraction != 1.0:
+        key += f"-h{float(budget_fraction)!r}"
+    return key
 
 
 # ---------------------------------------------------------------------------------------
@@ -388,10 +412,20 @@ def validate_record(record: Any, path: str | Path) -> dict[str, Any]:
     stem = Path(path).stem
     if record["key"] != stem:
         raise bad(f"its 'key' {record['key']!r} does not match its file name (key {stem!r})")
-    expected = run_key(record["arm"], record["strength"], record["seed"])
+    fraction = record.get("budget_fraction", 1.0)
+    if not _is_number(fraction) or not 0 < fraction <= 1:
+        raise bad(f"'budget_fraction' must be a number in (0, 1], got {fraction!r:.60}")
+    trial_settings = record.get("trial_settings", {"strength": record["strength"]})
+    if (not isinstance(trial_settings, dict)
+            or not all(_is_number(v) for v in trial_settings.values())):
+        raise bad(f"'trial_settings' must map names to numbers, got {trial_settings!r:.60}")
+    trial = record.get("trial", 0)
+    if isinstance(trial, bool) or not isinstance(trial, int):
+        raise bad(f"'trial' must be an integer, got {trial!r:.60}")
+    expected = run_key(record["arm"], trial_settings, record["seed"], fraction, trial)
     if record["key"] != expected:
         raise bad(f"its 'key' {record['key']!r} does not match its arm, strength and seed "
-                  f"(key {expected!r})")
+                  f"(with its trial settings and budget fraction: key {expected!r})")
     return record
 
 
