@@ -115,12 +115,20 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
             (a subclass) when a file cannot be written (disk full: free space and rerun).
     """
     from holonomic.study import storage
-    from holonomic.study.execution import data_fingerprint, prepare_runs, run_all
+    from holonomic.study.execution import (data_fingerprint, halving_rung, prepare_runs,
+                                           run_all, run_halving)
     from holonomic.study.runner import check_selection, plan_runs
     from holonomic.study.sharding import shard_runs
 
     check_selection(config)  # a selection metric the task lacks: refused before any output
     specs = plan_runs(config)
+    if config.halving is not None:
+        if shard is not None:
+            raise StudyConfigError("study config: 'study.halving' cannot be combined with "
+                                   "--shard (which trials continue is known only after "
+                                   "every rung run); run without --shard, or set "
+                                   "study.halving = false")
+        specs = halving_rung(config) + specs  # every run it may train, for the checks
     if shard is not None:
         specs = shard_runs(specs, *shard)
     invalid: list[InvalidRunRecord] | None = [] if rerun_invalid else None
@@ -135,8 +143,11 @@ def run_study(config: StudyConfig, out_dir: str | Path, workers: int = 1,
                   f"({error.problem}); its run is redone", file=sys.stderr)
         for source, target in moved:
             print(f"holonomic study: moved {str(source)!r} to {str(target)!r}", file=sys.stderr)
-    records = run_all(config, out_dir, workers=workers, progress=progress, specs=specs,
-                      done=done)
+    if config.halving is not None:
+        records = run_halving(config, out_dir, workers=workers, progress=progress, done=done)
+    else:
+        records = run_all(config, out_dir, workers=workers, progress=progress, specs=specs,
+                          done=done)
     if shard is None:
         return _write_report(config, out_dir, records, plots)
     statuses = [records[s.key]["status"] for s in specs]

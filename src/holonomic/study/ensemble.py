@@ -65,8 +65,10 @@ from holonomic.sampling import (
     classification_metrics,
     predict_probabilities,
 )
-from holonomic.study.arms import ArmSetup, constraint_residual
-from holonomic.study.config import EnsembleConfig, StudyConfig
+from holonomic.study.arms import constraint_residual
+from holonomic.study.config import BudgetConfig, EnsembleConfig, StudyConfig
+from holonomic.study.loop import SAMPLING_RNG_OFFSET, evaluation_mode, model_rng, run_minibatches
+from holonomic.study.regularisers import ArmSetup
 from holonomic.study.tasks import Task, regression_scores
 
 __all__ = ["ENSEMBLE_METRICS", "REGRESSION_ENSEMBLE_METRICS", "TRACED", "ensemble_metrics",
@@ -91,14 +93,19 @@ def ensemble_metrics(task: Task | str | None = None) -> tuple[str, ...]:
     return REGRESSION_ENSEMBLE_METRICS if name == "regression" else ENSEMBLE_METRICS
 
 
-def _sampler(model: nn.Module, ens: EnsembleConfig, config: StudyConfig, setup: ArmSetup,
+def _budget(budget: BudgetConfig | StudyConfig) -> BudgetConfig:
+    """The budget (a whole :class:`StudyConfig` is accepted for older callers)."""
+    return budget.budget if isinstance(budget, StudyConfig) else budget
+
+
+def _sampler(model: nn.Module, ens: EnsembleConfig, budget: BudgetConfig, setup: ArmSetup,
              n_train: int, seed: int) -> tuple[torch.optim.Optimizer, dict[str, Any]]:
-    resolved = ens.resolved(config.budget, n_train)
+    resolved = ens.resolved(budget, n_train)
     settings = {**resolved, "dataset_size": n_train,
                 "weight_decay": setup.weight_decay * n_train,
                 "seed": seed + _SAMPLER_SEED_OFFSET}
     common = dict(step=settings["step"], friction=settings["friction"],
-                  temperature=ens.temperature, projection=config.budget.projection,
+                  temperature=ens.temperature, projection=budget.projection,
                   seed=settings["seed"], dataset_size=n_train,
                   weight_decay=settings["weight_decay"])
     cls = hn.AdaptiveLangevin if ens.sampler == "adaptive" else hn.Langevin
@@ -145,7 +152,7 @@ def _regression_metrics(mean: torch.Tensor, variance: torch.Tensor, y: Any,
     return {m: out[m] for m in REGRESSION_ENSEMBLE_METRICS}
 
 
-def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Module,
+def run_ensemble_phase(budget: BudgetConfig, ens: EnsembleConfig, model: nn.Module,
                        setup: ArmSetup, data: dict[str, tuple[torch.Tensor, torch.Tensor]],
                        seed: int, first_epoch: int, task: Task | None = None,
                        targets: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -154,17 +161,17 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
     ``data`` maps ``"train"``, ``"val"``, ``"test"`` to (inputs, training targets: labels,
     or standardised regression targets); ``targets`` maps ``"val"`` and ``"test"`` to the
     labels or original-unit targets the metrics compare with (default: the labels of
-    ``data``); ``task`` defaults to classification. Mini-batches follow
-    :func:`holonomic.study.runner.epoch_order` from epoch ``first_epoch`` on (the epochs
-    after training). Keys of the result: ``settings`` (as configured and as resolved),
+    ``data``); ``task`` defaults to classification; ``budget``: the study's (batch size,
+    projection, default step and friction). Mini-batches follow the training loop
+    (:func:`holonomic.study.loop.run_minibatches`) from epoch ``first_epoch`` on (the
+    epochs after training). Keys of the result: ``settings`` (as configured and as resolved),
     ``status`` (``ok``, ``failed``: an integration step failed, ``diverged``: a non-finite
     loss), ``message``, ``steps_done``, ``samples``, ``single`` and ``ensemble``
     (``{"val": metrics, "test": metrics}`` with the names of :func:`ensemble_metrics`;
     ensemble metrics NaN unless ``ok``), ``traces`` (observable -> list of one value per
     sample), ``constraint_residual`` after sampling, ``wall_s``.
     """
-    from holonomic.study.runner import (_SAMPLING_RNG_OFFSET, epoch_order, evaluation_mode,
-                                        minibatch_step, model_rng)
+    budget = _budget(budget)
 
     started = time.perf_counter()
     x_train, y_train = data["train"]
@@ -193,36 +200,27 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
     else:
         single = scores(predict_probabilities(model, x_eval), None)
 
-    sampler, resolved = _sampler(model, ens, config, setup, n_train, seed)
+    sampler, resolved = _sampler(model, ens, budget, setup, n_train, seed)
     burn_in = resolved["burn_in"]
     total = burn_in + ens.samples * ens.every
     collector = PredictiveEnsemble(model, x_eval, burn_in=burn_in, every=ens.every,
                                    to_probs=_moments if regression else None)
     traces: dict[str, list[float]] = {name: [] for name in TRACED}
-    batch = config.budget.batch_size
-    status, message, step, epoch = "ok", "", 0, first_epoch
+
+    def on_step(step: int) -> None:
+        if collector.observe():  # collects in eval mode
+            with evaluation_mode(model):
+                train_loss = float(task.loss(model(x_train), y_train))
+            traces["train_loss"].append(train_loss)
+            traces["weight_norm_output"].append(_output_norm(model))
+
     model.train()
     # dropout masks (the global torch RNG) fixed by the seed; the caller's RNG is untouched
-    with model_rng(seed, 0, _SAMPLING_RNG_OFFSET):
-        try:
-            while step < total:
-                order = epoch_order(n_train, seed, epoch)
-                epoch += 1
-                for start in range(0, n_train, batch):
-                    if step == total:
-                        break
-                    minibatch_step(model, sampler, setup, x_train, y_train,
-                                   order[start:start + batch], f"sampling step {step}", task.loss)
-                    step += 1
-                    if collector.observe():  # collects in eval mode
-                        with evaluation_mode(model):
-                            train_loss = float(task.loss(model(x_train), y_train))
-                        traces["train_loss"].append(train_loss)
-                        traces["weight_norm_output"].append(_output_norm(model))
-        except hn.IntegrationError as exc:
-            status, message = "failed", f"IntegrationError at sampling step {step}: {exc}"
-        except FloatingPointError as exc:
-            status, message = "diverged", str(exc)
+    with model_rng(seed, 0, SAMPLING_RNG_OFFSET):
+        status, message, step = run_minibatches(
+            model, sampler, setup, x_train, y_train, batch_size=budget.batch_size, seed=seed,
+            steps=total, first_epoch=first_epoch, loss=task.loss, on_step=on_step,
+            label="sampling step")
     if status == "ok" and not all(math.isfinite(v) for t in traces.values() for v in t):
         status, message = "diverged", "non-finite traced observable"
     nan = {name: math.nan for name in ensemble_metrics(task)}
@@ -249,11 +247,11 @@ def run_ensemble_phase(config: StudyConfig, ens: EnsembleConfig, model: nn.Modul
     }
 
 
-def skipped_phase(config: StudyConfig, ens: EnsembleConfig, n_train: int,
+def skipped_phase(budget: BudgetConfig, ens: EnsembleConfig, n_train: int,
                   reason: str, task: Task | str | None = None) -> dict[str, Any]:
     """The phase's record when training did not finish (nothing to sample from)."""
     nan = {name: math.nan for name in ensemble_metrics(task)}
-    return {"settings": {**asdict(ens), **ens.resolved(config.budget, n_train)},
+    return {"settings": {**asdict(ens), **ens.resolved(_budget(budget), n_train)},
             "sampler": "AdaptiveLangevin" if ens.sampler == "adaptive" else "Langevin",
             "status": "skipped", "message": f"not sampled: {reason}", "steps_done": 0,
             "samples": 0, "single": {"val": dict(nan), "test": dict(nan)},

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import contextlib
 import ctypes
+import math
 import os
 import signal
 import sys
@@ -47,7 +48,10 @@ __all__ = [
     "check_model",
     "data_fingerprint",
     "prepare_runs",
+    "halving_rung",
+    "halving_survivors",
     "run_all",
+    "run_halving",
     "terminate_on_signals",
     "usable_cpus",
 ]
@@ -109,6 +113,14 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
                 f"made on data with fingerprint {theirs}. Mixing them would compare runs "
                 "trained on different data; use a new --out directory for the new data, or "
                 "restore the old data to finish the old study")
+    for key, record in records.items():
+        arm = config.arm(record["arm"])
+        if record.get("recipe_fingerprint") != arm.recipe_fingerprint():
+            raise StudyConfigError(
+                f"study config: {str(out_dir)!r} holds run {key!r} made with another recipe "
+                f"for arm {arm.name!r} (regulariser, optimiser, fixed values or groups "
+                f"changed in [arms.{arm.name}]); use a new --out directory, rename the arm, "
+                f"or delete that arm's runs ({arm.name}-*.json) from {runs!r}")
     for key, record in records.items():
         wanted = config.ensemble_settings(record["arm"])
         if record.get("ensemble_settings") != wanted:
@@ -404,6 +416,80 @@ def run_all(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     finally:
         bar.close()
     return storage.read_records(out_dir, keys)
+
+
+# ---------------------------------------------------------------------------------------
+# Successive halving
+
+#: File of ``--out`` recording a successive-halving study's rung: kept and dropped trials.
+HALVING_RECORD = "halving.json"
+
+
+def halving_rung(config: StudyConfig) -> list[RunSpec]:
+    """The rung runs of ``study.halving``: every trial of every arm with more than one
+    trial, every seed, at ``budget_fraction = config.halving``."""
+    return [spec for spec in plan_runs(config, config.halving)
+            if len(config.arm(spec.arm).trials) > 1]
+
+
+def halving_survivors(config: StudyConfig, records: dict[str, dict], metric: str,
+                      higher_is_better: bool) -> tuple[dict[str, list[int]],
+                                                       dict[str, list[float]]]:
+    """Per arm, the trials that continue: the better half (``ceil(n / 2)``) by the mean
+    over seeds of the rung runs' validation ``metric`` (a trial with a failed or diverged
+    seed ranks last; ties keep trial order). Arms with one trial keep it without a rung.
+    Returns ``(kept trial indices per arm, rung means per arm)``."""
+    kept: dict[str, list[int]] = {}
+    means: dict[str, list[float]] = {}
+    for arm in config.arms:
+        n = len(arm.trials)
+        if n == 1:
+            kept[arm.name], means[arm.name] = [0], []
+            continue
+        values = []
+        for trial in arm.trials:
+            runs = [records[RunSpec(arm.name, trial.index, trial.settings, seed,
+                                    config.halving).key] for seed in config.seeds]
+            scores = [float(r["metrics"].get(metric, math.nan)) for r in runs]
+            ok = all(r["status"] == "ok" for r in runs) and all(map(math.isfinite, scores))
+            values.append(sum(scores) / len(scores) if ok else math.nan)
+        sign = -1.0 if higher_is_better else 1.0
+        order = sorted(range(n), key=lambda i: (math.isnan(values[i]),
+                                                sign * values[i] if not math.isnan(values[i])
+                                                else 0.0, i))
+        kept[arm.name] = sorted(order[:math.ceil(n / 2)])
+        means[arm.name] = values
+    return kept, means
+
+
+def run_halving(config: StudyConfig, out_dir: str | Path, workers: int = 1,
+                progress: bool = True, done: dict[str, dict] | None = None,
+                ) -> dict[str, dict]:
+    """Successive halving (``study.halving = f``): every trial of every arm (with more
+    than one trial) first trains for ``round(f * epochs)`` epochs of the full-length
+    schedule, every seed; per arm the better half by mean validation metric (the study's
+    selection) is then rerun in full from scratch (deterministic: its first epochs equal
+    the rung run's). The rung's kept and dropped trials are written to
+    ``out_dir/halving.json``. Returns every record, rung runs (``budget_fraction = f``)
+    and full runs."""
+    from holonomic.study.runner import study_task
+    from holonomic.study.config import selection_metric
+
+    task = study_task(config)
+    metric = selection_metric(config, task)
+    rung = halving_rung(config)
+    records = run_all(config, out_dir, workers, progress, specs=rung, done=done)
+    kept, means = halving_survivors(config, records, metric,
+                                    task.higher_is_better(metric.removeprefix("val_")))
+    full = [spec for spec in plan_runs(config) if spec.trial in kept[spec.arm]]
+    storage.atomic_write_text(Path(out_dir) / HALVING_RECORD, storage.dumps({
+        "fraction": config.halving, "metric": metric,
+        "kept": kept,
+        "dropped": {arm.name: [t.index for t in arm.trials if t.index not in kept[arm.name]]
+                    for arm in config.arms},
+        "rung_means": means}))
+    records.update(run_all(config, out_dir, workers, progress, specs=full, done=done))
+    return records
 
 
 # ---------------------------------------------------------------------------------------

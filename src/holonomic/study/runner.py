@@ -1,9 +1,16 @@
-"""Running a study: one training run per (arm, setting, seed), resumable and parallel.
+"""Running a study: one training run per (arm, trial, seed), resumable and parallel.
 
-Every run trains with ``holonomic.Langevin`` under the same budget (epochs, batch size,
-step/friction/temperature, schedule), so every arm gets the same number of gradient
-evaluations: ``epochs * ceil(n_train / batch_size)`` per fold, times the number of folds
-with k-fold data (``grad_evals`` in the record is that total). The seed fixes the data
+Every run trains its arm's recipe: the model (with dropout when the regulariser asks), the
+regulariser applied (:data:`holonomic.study.regularisers.REGULARISERS`), the optimiser
+built from :data:`holonomic.study.optimisers.OPTIMISERS` with the trial's settings
+(:func:`resolve_settings`: the budget's lr, momentum and temperature unless the arm fixes
+or searches them) and param groups from ``[[arms.NAME.groups]]`` (:func:`param_groups`),
+then the same loop for every optimiser (:func:`holonomic.study.loop.run_minibatches`) under
+the same budget (epochs, batch size, schedule), so every arm gets the same number of
+gradient evaluations: ``epochs * ceil(n_train / batch_size)`` per fold, times the number of
+folds with k-fold data (``grad_evals`` in the record is that total; a successive-halving
+rung run at ``budget_fraction = f`` trains ``round(f * epochs)`` epochs of the full-length
+schedule). The seed fixes the data
 split, the initial weights, the minibatch order and the integrator's noise, and the same
 seeds are used by every arm, so comparisons between arms are paired.
 
@@ -36,22 +43,27 @@ from __future__ import annotations
 
 import math
 import time
-from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, Iterator, Protocol, Sequence
+from typing import Any, Iterable, Mapping, Protocol, Sequence
 
 import numpy as np
 import torch
 from torch import nn
 from torch.nn import functional as F
 
-import holonomic as hn
 from holonomic.study import storage
-from holonomic.study.arms import ArmSetup, constraint_residual, prepare_arm, weight_norms
-from holonomic.study.config import StudyConfig, StudyConfigError, selection_metric
+from holonomic.study.arms import constraint_residual, weight_norms
+from holonomic.study.config import (ArmConfig, BudgetConfig, StudyConfig, StudyConfigError,
+                                    selection_metric)
 from holonomic.study.data import Dataset, Split, load_dataset, make_splits
+from holonomic.study.ensemble import run_ensemble_phase, skipped_phase
+from holonomic.study.loop import (FOLD_SEED_OFFSET, epoch_order, evaluation_mode,
+                                  minibatch_step, model_rng, run_minibatches)
 from holonomic.study.models import build_model
+from holonomic.study.optimisers import (OPTIMISERS, budget_defaults, decoupled_decay,
+                                        group_settings)
+from holonomic.study.regularisers import REGULARISERS, ArmSetup
 from holonomic.study.tasks import PARTS, Task
 
 __all__ = [
@@ -67,7 +79,9 @@ __all__ = [
     "minibatch_step",
     "model_rng",
     "outputs_of",
+    "param_groups",
     "plan_runs",
+    "resolve_settings",
     "record_metric_names",
     "study_task",
     "train_run",
@@ -77,55 +91,53 @@ _DTYPES = {"float32": torch.float32, "float64": torch.float64}
 #: Weight metrics every run record holds besides the task's metrics (and
 #: ``constraint_residual``).
 WEIGHT_METRICS = ("weight_norm_hidden", "mean_row_norm_hidden", "weight_norm_output")
-#: Fold ``j`` of a seed draws its integrator noise from ``seed + j * _FOLD_SEED_OFFSET``
-#: (fold 0, and hold-out runs, from the seed itself).
-_FOLD_SEED_OFFSET = 100_003
-#: Randomness a model draws from the global torch RNG in its forward pass (``nn.Dropout``,
-#: ...) during training is seeded with ``seed + _FOLD_SEED_OFFSET * fold +
-#: _MODEL_RNG_OFFSET`` (:func:`model_rng`), which differs from the initial-weights seed.
-_MODEL_RNG_OFFSET = 7_919_007
-#: ... and during an ensemble phase's sampling with this offset instead.
-_SAMPLING_RNG_OFFSET = 15_485_863
-
-
-@contextmanager
-def model_rng(seed: int, fold: int = 0, offset: int = _MODEL_RNG_OFFSET) -> Iterator[None]:
-    """Seed the global torch RNG (CPU) for the duration, inside
-    :func:`torch.random.fork_rng`, so the caller's global RNG state is restored afterwards.
-
-    Dropout masks and any other randomness a model's forward draws from the global RNG
-    are then fixed by (seed, fold): a run is reproducible, and every arm at the same seed
-    draws the same masks (runs stay paired across arms).
-    """
-    with torch.random.fork_rng(devices=[]):
-        torch.manual_seed(int(seed) + _FOLD_SEED_OFFSET * int(fold) + int(offset))
-        yield
 
 
 @dataclass(frozen=True)
 class RunSpec:
-    """One training run: an arm, a grid point of that arm, and a seed."""
+    """One training run: an arm, one of its trials, a seed, and the fraction of the epochs
+    it trains for (1 for a full run, ``f < 1`` for a successive-halving rung run).
+
+    ``settings`` are the trial's own settings (:attr:`holonomic.study.search.Trial.settings`;
+    a number means ``{"strength": number}``, as runs were named before recipes).
+    """
 
     arm: str
-    index: int
-    strength: float
+    trial: int
+    settings: Mapping[str, float]
     seed: int
+    budget_fraction: float = 1.0
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.settings, Mapping):
+            object.__setattr__(self, "settings", {"strength": float(self.settings)})
+
+    @property
+    def index(self) -> int:
+        """The trial's index (the old name, kept)."""
+        return self.trial
+
+    @property
+    def strength(self) -> float:
+        """The regulariser's strength (0 where it has none)."""
+        return float(self.settings.get("strength", 0.0))
 
     @property
     def key(self) -> str:
-        """File-name key, unique per (arm, strength, seed), e.g. ``fixed_norm-0.5-s3``.
+        """File-name key (:func:`holonomic.study.storage.run_key`), e.g.
+        ``fixed_norm-0.5-s3`` or ``adamw-t2-1a2b3c4d-s3``."""
+        return storage.run_key(self.arm, self.settings, self.seed, self.budget_fraction,
+                               self.trial)
 
-        It names the strength rather than its grid position, so a study whose grid grows
-        reuses the runs it already has and never mistakes one strength for another.
-        """
-        return storage.run_key(self.arm, self.strength, self.seed)
+    def __hash__(self) -> int:
+        return hash(self.key)
 
 
-def plan_runs(config: StudyConfig) -> list[RunSpec]:
-    """All runs of a study in a fixed order (arm, grid point, seed)."""
-    return [RunSpec(arm.name, i, strength, seed)
+def plan_runs(config: StudyConfig, budget_fraction: float = 1.0) -> list[RunSpec]:
+    """All runs of a study in a fixed order (arm, trial, seed), at ``budget_fraction``."""
+    return [RunSpec(arm.name, trial.index, dict(trial.settings), seed, budget_fraction)
             for arm in config.arms
-            for i, strength in enumerate(arm.grid)
+            for trial in arm.trials
             for seed in config.seeds]
 
 
@@ -145,74 +157,124 @@ class StepHook(Protocol):
         ...
 
 
-def default_step_hooks(config: StudyConfig, spec: RunSpec,
+def default_step_hooks(audit_every: int, spec: RunSpec,
                        out_dir: str | Path | None = None,
                        fold: int | None = None) -> list[StepHook]:
     """Hooks attached to every run: an audit (:class:`~holonomic.study.audit_hook.RunAudit`)
-    recording every ``config.audit_every`` steps and at the end, written to
-    ``out_dir/audits/<run key>.jsonl`` (``<run key>.fold<j>.jsonl`` for fold ``j`` of
-    k-fold data; in memory only when ``out_dir`` is None).
+    recording every ``audit_every`` steps (``[audit] every``; a :class:`StudyConfig` is
+    also accepted) and at the end, written to ``out_dir/audits/<run key>.jsonl``
+    (``<run key>.fold<j>.jsonl`` for fold ``j`` of k-fold data; in memory only when
+    ``out_dir`` is None).
 
     This is the extension point for per-run diagnostics: return objects with ``name``,
     ``on_step(model, optimizer, step)``, ``summary() -> dict`` and optionally ``finish``.
     """
     from holonomic.study.audit_hook import RunAudit
 
+    if isinstance(audit_every, StudyConfig):
+        audit_every = audit_every.audit_every
     name = spec.key if fold is None else f"{spec.key}.fold{fold}"
     path = None if out_dir is None else storage.audit_path(out_dir, name)
-    return [RunAudit(config.audit_every, path, relative_to=out_dir)]
+    return [RunAudit(audit_every, path, relative_to=out_dir)]
 
 
-def make_optimizer(params: Iterable[torch.nn.Parameter], config: StudyConfig,
-                   weight_decay: float, seed: int) -> torch.optim.Optimizer:
-    """``holonomic.Langevin`` with the study budget (either parametrisation)."""
-    b = config.budget
-    if b.parametrisation == "sgd":
-        return hn.Langevin.from_sgd(params, lr=b.lr, momentum=b.momentum,
-                                    temperature=b.temperature, weight_decay=weight_decay,
-                                    seed=seed, projection=b.projection)
-    return hn.Langevin(params, step=b.step, friction=b.friction, temperature=b.temperature,
-                       projection=b.projection, seed=seed, weight_decay=weight_decay)
+def resolve_settings(arm: ArmConfig, budget: BudgetConfig,
+                     trial_settings: Mapping[str, float]) -> dict[str, float]:
+    """The hyperparameters a trial actually uses: the budget's ``lr``, ``momentum`` and
+    ``temperature`` (:func:`holonomic.study.optimisers.budget_defaults`) for those the
+    optimiser has, overridden by the trial's settings, and ``strength`` when the
+    regulariser has one."""
+    opt = OPTIMISERS[arm.optimiser]
+    reg = REGULARISERS[arm.regulariser]
+    defaults = budget_defaults(budget)
+    out = {name: float(trial_settings.get(name, defaults[name]))
+           for name in opt.hyperparameters}
+    if reg.has_strength:
+        out["strength"] = float(trial_settings["strength"])
+    return out
 
 
-def epoch_order(n: int, seed: int, epoch: int) -> torch.Tensor:
-    """Minibatch order of one epoch: a permutation fixed by (seed, epoch)."""
-    generator = torch.Generator().manual_seed(1_000_003 * seed + epoch)
-    return torch.randperm(n, generator=generator)
+def _group_selection(model: nn.Module, layers: str | Sequence[str], key: str) -> list[str]:
+    """Qualified parameter names of a ``[[arms.NAME.groups]]`` entry: ``"hidden"`` /
+    ``"hidden+output"`` / ``"output"`` take those layers' weights and biases; patterns
+    match any parameter (weights and biases)."""
+    import fnmatch
+
+    from holonomic.study.models import output_layer, select_weights
+
+    names = [name for name, _ in model.named_parameters()]
+    if isinstance(layers, str):
+        if layers == "output":
+            output = output_layer(model)
+            chosen = [] if output is None else [output[0]]
+        else:
+            chosen = [name for name, _ in select_weights(model, layers, key)]
+        prefixes = {name.rpartition(".")[0] for name in chosen}
+        return [name for name in names if name.rpartition(".")[0] in prefixes]
+    out = []
+    for pattern in layers:
+        matched = [name for name in names if fnmatch.fnmatchcase(name, pattern)]
+        if not matched:
+            raise StudyConfigError(f"study config: '{key}' pattern {pattern!r} matches no "
+                                   f"parameter of the model; parameters: {', '.join(names)}")
+        out += [name for name in matched if name not in out]
+    return out
 
 
-@contextmanager
-def evaluation_mode(model: nn.Module) -> Iterator[nn.Module]:
-    """Evaluate ``model``: eval mode (dropout off, batch-norm running statistics) under
-    ``torch.no_grad()``; every submodule's previous training flag is restored afterwards."""
-    modes = [(module, module.training) for module in model.modules()]
-    model.eval()
-    try:
-        with torch.no_grad():
-            yield model
-    finally:
-        for module, mode in modes:
-            module.training = mode
+def param_groups(model: nn.Module, arm: ArmConfig, settings: Mapping[str, float],
+                 ) -> tuple[list[Any], list[dict[str, Any]]]:
+    """``(params for the optimiser, recorded groups)``: ``model.parameters()`` as a list
+    when the arm has no groups; else one param-group dict per ``[[arms.NAME.groups]]``
+    entry (the first entry that matches a parameter takes it) with its resolved settings
+    (:func:`holonomic.study.optimisers.group_settings`), then the arm's default group of
+    the remaining parameters. Recorded groups: ``{"layers": [names], ...settings}``."""
+    if not arm.groups:
+        return list(model.parameters()), []
+    opt = OPTIMISERS[arm.optimiser]
+    by_name = dict(model.named_parameters())
+    taken: set[str] = set()
+    groups, recorded = [], []
+    for i, group in enumerate(arm.groups):
+        key = f"arms.{arm.name}.groups[{i}].layers"
+        names = [n for n in _group_selection(model, group.layers, key) if n not in taken]
+        if not names:
+            raise StudyConfigError(f"study config: '{key}' takes no parameter (an earlier "
+                                   "group took them, or the selection is empty); change "
+                                   "the layers or remove the group")
+        taken.update(names)
+        resolved = group_settings(settings, group.as_dict(), opt.hyperparameters)
+        groups.append({"params": [by_name[n] for n in names], **resolved})
+        recorded.append({"layers": names, **resolved})
+    rest = [n for n in by_name if n not in taken]
+    if rest:
+        groups.append({"params": [by_name[n] for n in rest]})
+        recorded.append({"layers": rest, **{k: float(settings[k])
+                                            for k in opt.hyperparameters}})
+    return groups, recorded
 
 
-def minibatch_step(model: nn.Module, optimizer: torch.optim.Optimizer, setup: ArmSetup,
-                   x: torch.Tensor, y: torch.Tensor, idx: torch.Tensor, where: str,
-                   loss: Callable[[torch.Tensor, torch.Tensor], torch.Tensor] | None = None,
-                   ) -> None:
-    """One step on the mini-batch ``idx``: ``zero_grad; mean loss; backward;
-    optimizer.step(); arm after-step``. ``loss(outputs, targets)`` is the task's loss
-    (``Task.loss``; cross-entropy when None). The model's mode is the caller's (train mode
-    in training and sampling). Raises ``FloatingPointError`` naming ``where`` on a
-    non-finite loss (``holonomic.IntegrationError`` passes through)."""
-    loss_fn = F.cross_entropy if loss is None else loss
-    optimizer.zero_grad(set_to_none=True)
-    value = loss_fn(model(x[idx]), y[idx])
-    if not torch.isfinite(value):
-        raise FloatingPointError(f"non-finite loss at {where}")
-    value.backward()
-    optimizer.step()
-    if setup.after_step is not None:
-        setup.after_step()
+def make_optimizer(params: Iterable[Any], budget: BudgetConfig | StudyConfig,
+                   weight_decay: float, seed: int, optimiser: str = "langevin",
+                   settings: Mapping[str, float] | None = None) -> torch.optim.Optimizer:
+    """The arm's optimiser from :data:`holonomic.study.optimisers.OPTIMISERS`
+    (``holonomic.Langevin`` with the budget's settings by default). ``weight_decay``: the
+    L2 coefficient in the potential, or the decoupled decay for an optimiser that applies
+    it itself (``adamw``)."""
+    if isinstance(budget, StudyConfig):
+        budget = budget.budget
+    settings = budget_defaults(budget) if settings is None else settings
+    spec = OPTIMISERS[optimiser]
+    if optimiser == "adaptive_langevin":
+        groups = params if isinstance(params, list) and params and all(
+            isinstance(g, dict) for g in params) else [{}]
+        for group in groups:
+            if group.get("adaptive", True) and not group.get("temperature",
+                                                             settings["temperature"]) > 0:
+                raise StudyConfigError(
+                    "study config: optimiser 'adaptive_langevin' needs temperature > 0 in "
+                    "every adaptive group (the thermostat targets it); set the arm's "
+                    "temperature (or search it) > 0, or give that group adaptive = false")
+    return spec.build(params, settings, seed, budget, weight_decay)
 
 
 def outputs_of(model: nn.Module, x: torch.Tensor) -> np.ndarray:
@@ -324,83 +386,107 @@ class _FoldRun:
     history: dict[str, list]
     metrics: dict[str, float]
     hooks: dict[str, Any] = field(default_factory=dict)
+    groups: list[dict[str, Any]] = field(default_factory=list)
 
 
-def _planned_steps(config: StudyConfig, n_train: int) -> int:
-    return config.budget.epochs * math.ceil(n_train / config.budget.batch_size)
+def _planned_steps(budget: BudgetConfig, n_train: int) -> int:
+    """Optimizer steps (= gradient evaluations) of a full run on ``n_train`` rows."""
+    return budget.epochs * math.ceil(n_train / budget.batch_size)
 
 
-def _train_fold(config: StudyConfig, spec: RunSpec, split: Split, fold: int,
+def trained_epochs(epochs: int, budget_fraction: float) -> int:
+    """Epochs a run at ``budget_fraction`` trains: ``round(fraction * epochs)``, at least 1."""
+    return epochs if budget_fraction == 1.0 else max(1, round(budget_fraction * epochs))
+
+
+@dataclass
+class _Recipe:
+    """What a run trains with: the arm, its resolved settings and the run's seed."""
+
+    arm: ArmConfig
+    settings: dict[str, float]
+    seed: int
+    budget_fraction: float = 1.0
+
+
+def _build(config: StudyConfig, recipe: _Recipe, in_features: int, n_outputs: int,
+           fold: int, dtype: torch.dtype,
+           ) -> tuple[nn.Module, ArmSetup, torch.optim.Optimizer, list[dict[str, Any]]]:
+    """Model (dropout when the regulariser asks), regulariser applied, optimiser built."""
+    arm = recipe.arm
+    reg = REGULARISERS[arm.regulariser]
+    opt = OPTIMISERS[arm.optimiser]
+    strength = recipe.settings.get("strength", 0.0)
+    model = build_model(config.model, in_features, n_outputs, recipe.seed, dtype,
+                        **reg.model_options(strength))
+    selection, key = arm.layer_selection(config.model)
+    setup: ArmSetup = reg.apply(model, strength, selection, key)
+    params, groups = param_groups(model, arm, recipe.settings)
+    decay = setup.weight_decay
+    if opt.native_decoupled_decay:
+        decay = setup.decoupled_weight_decay
+    optimizer = make_optimizer(params, config.budget, decay,
+                               recipe.seed + FOLD_SEED_OFFSET * fold, arm.optimiser,
+                               recipe.settings)
+    if setup.decoupled_weight_decay and not opt.native_decoupled_decay:
+        clip, shrink = setup.after_step, decoupled_decay(optimizer,
+                                                        setup.decoupled_weight_decay)
+        setup.after_step = shrink if clip is None else (lambda: (shrink(), clip()))
+    return model, setup, optimizer, groups
+
+
+def _train_fold(config: StudyConfig, recipe: _Recipe, split: Split, fold: int,
                 hooks: list[StepHook], where: str = "") -> _FoldRun:
     """Train one model on one split (the whole run for hold-out data); ``where`` prefixes
     failure messages (``"fold j "`` for k-fold data)."""
-    dtype = _DTYPES[config.budget.dtype]
+    budget = config.budget
+    dtype = _DTYPES[budget.dtype]
     task = split.task
     data = _tensors(split, dtype, task)
     targets = _targets(split)
     x_train, y_train = data["train"]
     n_train = len(y_train)
-    model = build_model(config.model, x_train.shape[1], task.n_outputs, spec.seed, dtype)
-    setup: ArmSetup = prepare_arm(spec.arm, spec.strength, model, config)
-    optimizer = make_optimizer(model.parameters(), config, setup.weight_decay,
-                               spec.seed + _FOLD_SEED_OFFSET * fold)
-    total_steps = _planned_steps(config, n_train)
+    model, setup, optimizer, groups = _build(config, recipe, x_train.shape[1],
+                                             task.n_outputs, fold, dtype)
+    total_steps = _planned_steps(budget, n_train)  # the full run's schedule, also for a rung
     scheduler = None
-    if config.budget.schedule == "cosine":
+    if budget.schedule == "cosine":
         scheduler = torch.optim.lr_scheduler.CosineAnnealingLR(optimizer, T_max=total_steps)
+    steps = trained_epochs(budget.epochs, recipe.budget_fraction) * math.ceil(
+        n_train / budget.batch_size)
 
     headline = task.headline
     history: dict[str, list] = {k: [] for k in (
         ["epoch"] + [f"{part}_{headline}" for part in PARTS]
         + [f"{part}_loss" for part in PARTS] + ["mean_row_norm_hidden", "constraint_residual"])}
-    model.train()
-    with model_rng(spec.seed, fold):
-        status, message, step = _train_epochs(config, spec, model, optimizer, setup, scheduler,
-                                              data, targets, task, hooks, history, where)
-    for hook in hooks:
-        if hasattr(hook, "finish"):
-            hook.finish(model, optimizer, step)
-    metrics = _final_metrics(model, data, setup, status, task, targets)
-    return _FoldRun(fold, task, split, model, setup, data, status, message, step, n_train,
-                    history, metrics, {hook.name: hook.summary() for hook in hooks})
 
+    def on_step(step: int) -> None:
+        for hook in hooks:
+            hook.on_step(model, optimizer, step)
+        if scheduler is not None:
+            scheduler.step()
 
-def _train_epochs(config: StudyConfig, spec: RunSpec, model: nn.Module,
-                  optimizer: torch.optim.Optimizer, setup: ArmSetup, scheduler, data: dict,
-                  targets: dict, task: Task, hooks: list[StepHook], history: dict[str, list],
-                  where: str) -> tuple[str, str, int]:
-    """The epochs of :func:`_train_fold` (the caller seeds the global RNG); returns
-    ``(status, message, steps done)``."""
-    x_train, y_train = data["train"]
-    n_train = len(y_train)
-    batch = config.budget.batch_size
-    headline = task.headline
-    status, message, step = "ok", "", 0
-    for epoch in range(config.budget.epochs):
-        order = epoch_order(n_train, spec.seed, epoch)
-        try:
-            for start in range(0, n_train, batch):
-                minibatch_step(model, optimizer, setup, x_train, y_train,
-                               order[start:start + batch], f"{where}step {step}", task.loss)
-                step += 1
-                for hook in hooks:
-                    hook.on_step(model, optimizer, step)
-                if scheduler is not None:
-                    scheduler.step()
-        except hn.IntegrationError as exc:
-            status, message = "failed", f"{where}IntegrationError at step {step}: {exc}"
-        except FloatingPointError as exc:
-            status, message = "diverged", f"{where}{exc}"
-        if status != "ok":
-            break
+    def on_epoch(epoch: int) -> None:
         scores = {part: _evaluate(model, data[part][0], targets[part], task) for part in PARTS}
-        history["epoch"].append(epoch + 1)
+        history["epoch"].append(epoch)
         for part in PARTS:
             history[f"{part}_{headline}"].append(scores[part][headline])
             history[f"{part}_loss"].append(scores[part]["loss"])
         history["mean_row_norm_hidden"].append(weight_norms(model, setup)["mean_row_norm_hidden"])
         history["constraint_residual"].append(constraint_residual(model, setup))
-    return status, message, step
+
+    model.train()
+    with model_rng(recipe.seed, fold):
+        status, message, step = run_minibatches(
+            model, optimizer, setup, x_train, y_train, batch_size=budget.batch_size,
+            seed=recipe.seed, steps=steps, loss=task.loss, on_step=on_step,
+            on_epoch=on_epoch, where=where)
+    for hook in hooks:
+        if hasattr(hook, "finish"):
+            hook.finish(model, optimizer, step)
+    metrics = _final_metrics(model, data, setup, status, task, targets)
+    return _FoldRun(fold, task, split, model, setup, data, status, message, step, n_train,
+                    history, metrics, {hook.name: hook.summary() for hook in hooks}, groups)
 
 
 def _mean_history(histories: list[dict[str, list]]) -> dict[str, list]:
@@ -464,7 +550,10 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
     task = splits[0].task
     selection_metric(config, task)  # an impossible selection fails before any training
     k = len(splits)
-    ensemble_config = config.arm(spec.arm).ensemble
+    arm = config.arm(spec.arm)
+    ensemble_config = arm.ensemble if spec.budget_fraction == 1.0 else None  # not on rungs
+    recipe = _Recipe(arm, resolve_settings(arm, config.budget, spec.settings), spec.seed,
+                     spec.budget_fraction)
     if k > 1 and hooks is not None:
         raise ValueError(f"train_run: the data have {k} folds and every fold gets its own "
                          "default hooks; pass hooks=None")
@@ -474,9 +563,10 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
     started = time.perf_counter()
     runs: list[_FoldRun] = []
     for j, split in enumerate(splits):
-        fold_hooks = list(default_step_hooks(config, spec, out_dir, None if k == 1 else j)
+        fold_hooks = list(default_step_hooks(config.audit_every, spec, out_dir,
+                                             None if k == 1 else j)
                           if hooks is None else hooks)
-        runs.append(_train_fold(config, spec, split, j, fold_hooks,
+        runs.append(_train_fold(config, recipe, split, j, fold_hooks,
                                 "" if k == 1 else f"fold {j} "))
         if runs[-1].status != "ok":
             break
@@ -494,12 +584,11 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
 
     ensemble = None
     if ensemble_config is not None:
-        from holonomic.study.ensemble import run_ensemble_phase, skipped_phase
-
-        ensemble = (run_ensemble_phase(config, ensemble_config, first.model, first.setup,
-                                       first.data, spec.seed, first_epoch=config.budget.epochs,
-                                       task=task, targets=_targets(first.split))
-                    if status == "ok" else skipped_phase(config, ensemble_config,
+        ensemble = (run_ensemble_phase(config.budget, ensemble_config, first.model,
+                                       first.setup, first.data, spec.seed,
+                                       first_epoch=config.budget.epochs, task=task,
+                                       targets=_targets(first.split))
+                    if status == "ok" else skipped_phase(config.budget, ensemble_config,
                                                          first.n_train, f"training {status}",
                                                          task=task))
     if k == 1:
@@ -512,8 +601,18 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
     record = {
         "key": spec.key,
         "arm": spec.arm,
-        "setting_index": spec.index,
+        "trial": spec.trial,
+        "setting_index": spec.trial,
         "strength": spec.strength,
+        "settings": recipe.settings,
+        "trial_settings": {name: float(v) for name, v in spec.settings.items()},
+        "searched": list(arm.trials[spec.trial].searched) if spec.trial < len(arm.trials)
+        else [],
+        "recipe": {"regulariser": arm.regulariser, "optimiser": arm.optimiser,
+                   "groups": first.groups},
+        "recipe_fingerprint": arm.recipe_fingerprint(),
+        "budget_fraction": float(spec.budget_fraction),
+        "epochs": trained_epochs(config.budget.epochs, spec.budget_fraction),
         "seed": spec.seed,
         "status": status,
         "message": message,
@@ -526,7 +625,9 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         "data_fingerprint": dataset.fingerprint,
         "feature_names": list(dataset.feature_names),
         "n_train": first.n_train,
-        "grad_evals": sum(_planned_steps(config, len(s.y_train)) for s in splits),
+        "grad_evals": sum(trained_epochs(config.budget.epochs, spec.budget_fraction)
+                          * math.ceil(len(s.y_train) / config.budget.batch_size)
+                          for s in splits),
         "steps_done": sum(r.steps_done for r in runs),
         "layers": first.setup.layers,
         "metrics": metrics,

@@ -130,11 +130,26 @@ def save_run_weights(out_dir: str | Path, spec: Any, model: nn.Module, dataset: 
         "data_fingerprint": dataset.fingerprint,
         "study_dir": str(Path(config.base_dir).resolve()),
     }
+    options = _model_options(config, spec)
+    if options:  # e.g. {"dropout": rate}: rebuild_model builds the same network
+        payload["model_options"] = options
     imputation = getattr(split, "imputation_mean", None)
     if imputation is not None:  # data.missing = "mean": predict fills missing the same way
         payload["imputation_mean"] = torch.as_tensor(np.asarray(imputation, dtype=np.float64))
     _write_atomic(path, payload)
     return os.path.relpath(path, out_dir).replace(os.sep, "/")
+
+
+def _model_options(config: Any, spec: Any) -> dict[str, Any]:
+    """What the arm's regulariser changed when building the model (``{"dropout": rate}``
+    for dropout), so :func:`rebuild_model` builds the same network."""
+    from holonomic.study.regularisers import REGULARISERS
+
+    try:
+        regulariser = config.arm(spec.arm).regulariser
+    except KeyError:
+        return {}
+    return REGULARISERS[regulariser].model_options(float(spec.strength))
 
 
 def load_weights(path: str | Path) -> dict[str, Any]:
@@ -167,7 +182,8 @@ def rebuild_model(info: dict[str, Any], study_dir: str | Path | None = None) -> 
             for folder in reversed(folders):  # the recorded folder ends up first
                 stack.enter_context(import_path(folder))
             model = build_model(model_config, int(info["in_features"]), int(info["n_outputs"]),
-                                int(info["seed"]), _DTYPES[info["dtype"]])
+                                int(info["seed"]), _DTYPES[info["dtype"]],
+                                **(info.get("model_options") or {}))
     except StudyConfigError as exc:
         if spec["factory"] is None:
             raise
