@@ -52,8 +52,8 @@ def _save(fig, path: Path) -> None:
 
 
 def _histories(config: StudyConfig, records: dict, arm: str, index: int, name: str):
-    strength = config.arm(arm).grid[index]
-    rows = [records[RunSpec(arm, index, strength, seed).key]["history"].get(name)
+    settings = config.arm(arm).trials[index].settings
+    rows = [records[RunSpec(arm, index, settings, seed).key]["history"].get(name)
             for seed in config.seeds]
     if any(r is None for r in rows):
         return None
@@ -82,7 +82,7 @@ def _integer_epochs(ax, epochs: int) -> None:
 def _per_setting(config: StudyConfig, records: dict, arm, metric: str):
     means, errs = [], []
     for i in range(len(arm.grid)):
-        vals = np.array([records[RunSpec(arm.name, i, arm.grid[i], s).key]["metrics"]
+        vals = np.array([records[RunSpec(arm.name, i, arm.trials[i].settings, s).key]["metrics"]
                          .get(metric, math.nan) for s in config.seeds], dtype=np.float64)
         mean, se = _mean_se(vals)
         means.append(float(mean))

@@ -187,7 +187,7 @@ def select_settings(config: StudyConfig, records: dict[str, dict],
     for arm in config.arms:
         means = []
         for i in range(len(arm.grid)):
-            values = [_metric(records[RunSpec(arm.name, i, arm.grid[i], seed).key],
+            values = [_metric(records[RunSpec(arm.name, i, arm.trials[i].settings, seed).key],
                               metrics.selection) for seed in config.seeds]
             means.append(float(np.mean(values)) if all(map(math.isfinite, values)) else math.nan)
         best = None
@@ -307,7 +307,9 @@ def _mean_interval(values: np.ndarray, confidence: float = 0.95,
 
 def _chosen_values(config: StudyConfig, records: dict[str, dict], sel: Selection,
                    metric: str) -> np.ndarray:
-    return np.array([_metric(records[RunSpec(sel.arm, sel.index, sel.strength, seed).key],
+    return np.array([_metric(records[RunSpec(sel.arm, sel.index,
+                                             config.arm(sel.arm).trials[sel.index].settings,
+                                             seed).key],
                              metric) for seed in config.seeds])
 
 
