@@ -44,6 +44,11 @@ RECIPE_DOC = {
                                  {"layers": "output", "adaptive": False,
                                   "temperature_scale": 0.01}]},
         "dropout": {"search": {"strength": [0.1, 0.2, 0.3]}},
+        "overdamped": {"regulariser": "orthonormal", "optimiser": "overdamped_langevin",
+                       "strength": 1.0, "temperature": 1e-6,
+                       "search": {"lr": {"low": 1e-3, "high": 1e-2}}},
+        "sgd_max_norm": {"regulariser": "max_norm", "optimiser": "sgd",
+                         "search": {"lr": [0.01, 0.03, 0.1], "strength": [1.0]}},
     },
 }
 
@@ -65,7 +70,7 @@ def test_every_arm_gets_the_same_trials_and_gradient_evaluations():
     assert {arm: len(t) for arm, t in trials.items()} == {arm: 3 for arm in trials}
     assert trials["sgd_wd"][0].searched == ("lr", "strength")
     specs = plan_runs(config)
-    assert len(specs) == 6 * 3 * 2
+    assert len(specs) == 8 * 3 * 2
     evals = {}
     for arm in trials:  # one run per arm: the same epochs, batches and steps for each
         record = train_run(config, RunSpec(arm, 0, trials[arm][0].settings, seed=0))
@@ -75,6 +80,33 @@ def test_every_arm_gets_the_same_trials_and_gradient_evaluations():
         assert record["budget_fraction"] == 1.0
         assert "lr" in record["settings"] and record["searched"] == list(trials[arm][0].searched)
     assert set(evals.values()) == {(4, 4, 2)}  # 2 epochs of ceil(64 / 32) steps
+
+
+def test_ensemble_phase_and_training_share_one_loop_and_ensemble_does_not_import_runner():
+    import ast
+    import inspect
+
+    from holonomic.study import ensemble, loop, runner
+
+    tree = ast.parse(inspect.getsource(ensemble))
+    imported = {node.module for node in ast.walk(tree) if isinstance(node, ast.ImportFrom)}
+    assert "holonomic.study.runner" not in imported
+    assert ensemble.run_minibatches is loop.run_minibatches is runner.run_minibatches
+
+
+def test_a_changed_recipe_is_not_mixed_with_stored_runs(tmp_path):
+    from holonomic.study.execution import prepare_runs, run_all
+
+    doc = _single_arm_doc({"regulariser": "none", "optimiser": "sgd", "lr": 0.05})
+    doc["budget"]["epochs"] = 1
+    config = parse_config(doc)
+    run_all(config, tmp_path, progress=False)
+    prepare_runs(config, tmp_path, plan_runs(config))  # the same recipe resumes
+    doc["arms"]["x"]["optimiser"] = "adamw"  # same settings {"lr": 0.05}: same run keys
+    changed = parse_config(doc)
+    assert [s.key for s in plan_runs(changed)] == [s.key for s in plan_runs(config)]
+    with pytest.raises(StudyConfigError, match="another recipe for arm 'x'"):
+        prepare_runs(changed, tmp_path, plan_runs(changed))
 
 
 def test_same_seed_same_trial_points_and_another_seed_others():

@@ -1,7 +1,11 @@
 """Experiment harness: does holding weights on a constraint set beat weight decay?
 
-A study trains one model per (arm, grid point, seed) with ``holonomic.Langevin`` under one
-shared budget, chooses each arm's setting on the validation split, and compares the chosen
+An arm is a training recipe: a regulariser (:mod:`holonomic.study.regularisers`), an
+optimiser (:mod:`holonomic.study.optimisers`: ``holonomic.Langevin`` and its relatives,
+``torch.optim.SGD``, ``torch.optim.AdamW``), optional per-layer settings and its own search
+space. Every arm gets the same number of trials (:mod:`holonomic.study.search`) and the same
+epochs. A study trains one model per (arm, trial, seed), chooses each arm's setting on the
+validation split, and compares the chosen
 settings on the test split against the baseline arm (``study.baseline``, default weight
 decay), paired by seed (t interval, Wilcoxon signed-rank test with Holm's adjustment over
 the arms, d_z and power figures). Every run is audited (``holonomic.audit``). An arm may
@@ -30,6 +34,9 @@ from holonomic.study.config import (
     parse_config,
 )
 from holonomic.study.demo import demo_config
+from holonomic.study.optimisers import OPTIMISERS
+from holonomic.study.regularisers import REGULARISERS
+from holonomic.study.search import Trial, plan_trials
 from holonomic.study.storage import InvalidRunRecord, StudyOutputError
 from holonomic.study.trained import class_probabilities, load_trained, predict
 
@@ -37,14 +44,18 @@ __all__ = [
     "ARM_NAMES",
     "IncompleteStudyError",
     "InvalidRunRecord",
+    "OPTIMISERS",
+    "REGULARISERS",
     "StudyConfig",
     "StudyConfigError",
     "StudyOutputError",
+    "Trial",
     "class_probabilities",
     "demo_config",
     "load_config",
     "load_trained",
     "parse_config",
+    "plan_trials",
     "predict",
     "report_study",
     "run_study",
