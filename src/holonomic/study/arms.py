@@ -95,7 +95,7 @@ def check_layer_selections(config: "StudyConfig", in_features: int, n_outputs: i
         if REGULARISERS[arm.regulariser].selects_layers:
             select_weights(model, *arm.layer_selection(config.model))
         if arm.groups:
-            from holonomic.study.runner import param_groups
+            from holonomic.study.optimisers import param_groups
 
             param_groups(model, arm, _defaults(config) | dict(arm.trials[0].settings))
 

@@ -25,19 +25,23 @@ Per-layer settings (``[[arms.NAME.groups]]``) become torch param groups with the
 
 from __future__ import annotations
 
+import fnmatch
 import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Mapping, Sequence
 
 import torch
+from torch import nn
 
 import holonomic as hn
+from holonomic.study.config import StudyConfigError
+from holonomic.study.models import output_layer, select_weights
 
 if TYPE_CHECKING:
-    from holonomic.study.config import BudgetConfig
+    from holonomic.study.config import ArmConfig, BudgetConfig
 
 __all__ = ["HYPERPARAMETERS", "OPTIMISERS", "Hyperparameter", "OptimiserSpec",
-           "budget_defaults", "decoupled_decay"]
+           "budget_defaults", "decoupled_decay", "group_settings", "param_groups"]
 
 
 @dataclass(frozen=True)
@@ -214,3 +218,58 @@ def group_settings(base: Mapping[str, float], group: Mapping[str, Any],
     if "adaptive" in group:
         out["adaptive"] = bool(group["adaptive"])
     return out
+
+
+def _group_selection(model: nn.Module, layers: str | Sequence[str], key: str) -> list[str]:
+    """Qualified parameter names of a ``[[arms.NAME.groups]]`` entry: ``"hidden"`` /
+    ``"hidden+output"`` / ``"output"`` take those layers' weights and biases; patterns
+    match any parameter (weights and biases)."""
+    names = [name for name, _ in model.named_parameters()]
+    if isinstance(layers, str):
+        if layers == "output":
+            output = output_layer(model)
+            chosen = [] if output is None else [output[0]]
+        else:
+            chosen = [name for name, _ in select_weights(model, layers, key)]
+        prefixes = {name.rpartition(".")[0] for name in chosen}
+        return [name for name in names if name.rpartition(".")[0] in prefixes]
+    out = []
+    for pattern in layers:
+        matched = [name for name in names if fnmatch.fnmatchcase(name, pattern)]
+        if not matched:
+            raise StudyConfigError(f"study config: '{key}' pattern {pattern!r} matches no "
+                                   f"parameter of the model; parameters: {', '.join(names)}")
+        out += [name for name in matched if name not in out]
+    return out
+
+
+def param_groups(model: nn.Module, arm: "ArmConfig", settings: Mapping[str, float],
+                 ) -> tuple[list[Any], list[dict[str, Any]]]:
+    """``(params for the optimiser, recorded groups)``: ``model.parameters()`` as a list
+    when the arm has no groups; else one param-group dict per ``[[arms.NAME.groups]]``
+    entry (the first entry that matches a parameter takes it) with its resolved settings
+    (:func:`holonomic.study.optimisers.group_settings`), then the arm's default group of
+    the remaining parameters. Recorded groups: ``{"layers": [names], ...settings}``."""
+    if not arm.groups:
+        return list(model.parameters()), []
+    opt = OPTIMISERS[arm.optimiser]
+    by_name = dict(model.named_parameters())
+    taken: set[str] = set()
+    groups, recorded = [], []
+    for i, group in enumerate(arm.groups):
+        key = f"arms.{arm.name}.groups[{i}].layers"
+        names = [n for n in _group_selection(model, group.layers, key) if n not in taken]
+        if not names:
+            raise StudyConfigError(f"study config: '{key}' takes no parameter (an earlier "
+                                   "group took them, or the selection is empty); change "
+                                   "the layers or remove the group")
+        taken.update(names)
+        resolved = group_settings(settings, group.as_dict(), opt.hyperparameters)
+        groups.append({"params": [by_name[n] for n in names], **resolved})
+        recorded.append({"layers": names, **resolved})
+    rest = [n for n in by_name if n not in taken]
+    if rest:
+        groups.append({"params": [by_name[n] for n in rest]})
+        recorded.append({"layers": rest, **{k: float(settings[k])
+                                            for k in opt.hyperparameters}})
+    return groups, recorded

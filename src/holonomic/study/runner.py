@@ -50,7 +50,6 @@ from typing import Any, Iterable, Mapping, Protocol, Sequence
 import numpy as np
 import torch
 from torch import nn
-from torch.nn import functional as F
 
 from holonomic.study import storage
 from holonomic.study.arms import constraint_residual, weight_norms
@@ -62,7 +61,7 @@ from holonomic.study.loop import (FOLD_SEED_OFFSET, epoch_order, evaluation_mode
                                   minibatch_step, model_rng, run_minibatches)
 from holonomic.study.models import build_model
 from holonomic.study.optimisers import (OPTIMISERS, budget_defaults, decoupled_decay,
-                                        group_settings)
+                                        param_groups)
 from holonomic.study.regularisers import REGULARISERS, ArmSetup
 from holonomic.study.tasks import PARTS, Task
 
@@ -192,65 +191,6 @@ def resolve_settings(arm: ArmConfig, budget: BudgetConfig,
     if reg.has_strength:
         out["strength"] = float(trial_settings["strength"])
     return out
-
-
-def _group_selection(model: nn.Module, layers: str | Sequence[str], key: str) -> list[str]:
-    """Qualified parameter names of a ``[[arms.NAME.groups]]`` entry: ``"hidden"`` /
-    ``"hidden+output"`` / ``"output"`` take those layers' weights and biases; patterns
-    match any parameter (weights and biases)."""
-    import fnmatch
-
-    from holonomic.study.models import output_layer, select_weights
-
-    names = [name for name, _ in model.named_parameters()]
-    if isinstance(layers, str):
-        if layers == "output":
-            output = output_layer(model)
-            chosen = [] if output is None else [output[0]]
-        else:
-            chosen = [name for name, _ in select_weights(model, layers, key)]
-        prefixes = {name.rpartition(".")[0] for name in chosen}
-        return [name for name in names if name.rpartition(".")[0] in prefixes]
-    out = []
-    for pattern in layers:
-        matched = [name for name in names if fnmatch.fnmatchcase(name, pattern)]
-        if not matched:
-            raise StudyConfigError(f"study config: '{key}' pattern {pattern!r} matches no "
-                                   f"parameter of the model; parameters: {', '.join(names)}")
-        out += [name for name in matched if name not in out]
-    return out
-
-
-def param_groups(model: nn.Module, arm: ArmConfig, settings: Mapping[str, float],
-                 ) -> tuple[list[Any], list[dict[str, Any]]]:
-    """``(params for the optimiser, recorded groups)``: ``model.parameters()`` as a list
-    when the arm has no groups; else one param-group dict per ``[[arms.NAME.groups]]``
-    entry (the first entry that matches a parameter takes it) with its resolved settings
-    (:func:`holonomic.study.optimisers.group_settings`), then the arm's default group of
-    the remaining parameters. Recorded groups: ``{"layers": [names], ...settings}``."""
-    if not arm.groups:
-        return list(model.parameters()), []
-    opt = OPTIMISERS[arm.optimiser]
-    by_name = dict(model.named_parameters())
-    taken: set[str] = set()
-    groups, recorded = [], []
-    for i, group in enumerate(arm.groups):
-        key = f"arms.{arm.name}.groups[{i}].layers"
-        names = [n for n in _group_selection(model, group.layers, key) if n not in taken]
-        if not names:
-            raise StudyConfigError(f"study config: '{key}' takes no parameter (an earlier "
-                                   "group took them, or the selection is empty); change "
-                                   "the layers or remove the group")
-        taken.update(names)
-        resolved = group_settings(settings, group.as_dict(), opt.hyperparameters)
-        groups.append({"params": [by_name[n] for n in names], **resolved})
-        recorded.append({"layers": names, **resolved})
-    rest = [n for n in by_name if n not in taken]
-    if rest:
-        groups.append({"params": [by_name[n] for n in rest]})
-        recorded.append({"layers": rest, **{k: float(settings[k])
-                                            for k in opt.hyperparameters}})
-    return groups, recorded
 
 
 def make_optimizer(params: Iterable[Any], budget: BudgetConfig | StudyConfig,
