@@ -309,8 +309,8 @@ BAD_INPUTS = [
      ["'arms.x'", "allowed optimisers for it", "decoupled_weight_decay"]),
     ({"regulariser": "none", "optimiser": "adamw", "momentum": 0.9},
      ["'arms.x.momentum'", "settable for this arm: lr"]),
-    ({"regulariser": "none", "strength": 0.1}, ["'arms.x.strength'",
-                                                "settable for this arm: lr, momentum, temperature"]),
+    ({"regulariser": "none", "strength": 0.1},
+     ["'arms.x.strength'", "settable for this arm: lr, momentum, temperature"]),
     ({"regulariser": "none", "search": {"lr": {"low": 0.1, "high": 0.01}}},
      ["'arms.x.search.lr'", "low < high"]),
     ({"regulariser": "none", "search": {"lr": {"low": 0.0, "high": 0.1, "scale": "linear"}}},
@@ -374,12 +374,18 @@ def test_study_key_errors_name_the_key_and_the_allowed_values(study, needles):
         assert needle in message, message
 
 
-def test_adaptive_at_zero_temperature_is_refused_unless_the_group_is_not_adaptive():
+def test_adaptive_at_zero_temperature_is_refused_unless_the_group_is_not_adaptive(tmp_path):
+    from holonomic.study.execution import prepare_runs
+
     doc = _single_arm_doc({"regulariser": "none", "optimiser": "adaptive_langevin",
                            "lr": 0.05, "temperature": 0.0})
     config = parse_config(doc)
-    with pytest.raises(StudyConfigError, match="adaptive_langevin' needs temperature > 0"):
+    needle = "'arms.x.temperature' = 0.0 for a group that adapts"
+    with pytest.raises(StudyConfigError, match=needle):
         train_run(config, RunSpec("x", 0, config.arms[0].trials[0].settings, 0))
+    with pytest.raises(StudyConfigError, match=needle):  # refused before anything is written
+        prepare_runs(config, tmp_path / "out", plan_runs(config))
+    assert not (tmp_path / "out").exists()
     doc = _single_arm_doc({"regulariser": "none", "optimiser": "adaptive_langevin",
                            "lr": 0.05, "temperature": 0.0,
                            "groups": [{"layers": "hidden+output", "adaptive": False}]})

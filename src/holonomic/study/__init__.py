@@ -176,15 +176,23 @@ def report_study(config: StudyConfig, out_dir: str | Path, plots: bool = True) -
     listing the missing runs and their plan numbers) unless every run of the study is
     finished: a report over a subset would choose settings from fewer seeds for some arms
     and break the pairing by seed. Invalid run files and runs of a different study (data
-    settings or contents, model or budget) are refused as in :func:`run_study`.
+    settings or contents, model or budget) are refused as in :func:`run_study`. With
+    ``study.halving`` the runs of the study are the rung runs and the full runs of the
+    trials the rung kept.
     """
     from holonomic.study import storage
-    from holonomic.study.execution import check_compatible, data_fingerprint
+    from holonomic.study.execution import (check_compatible, data_fingerprint,
+                                           halving_full_runs, halving_rung)
     from holonomic.study.runner import plan_runs
     from holonomic.study.sharding import missing_runs_message
 
     storage.check_output_dir(out_dir)
     specs = plan_runs(config)
+    if config.halving is not None:  # the rung, then the full runs of the trials it kept
+        rung = halving_rung(config)
+        records = storage.read_records(out_dir, [s.key for s in rung])
+        specs = rung + (halving_full_runs(config, records)[0]
+                        if len(records) == len(rung) else specs)
     fingerprint = data_fingerprint(config)
     records = storage.read_records(out_dir, [s.key for s in specs])
     check_compatible(config, records, out_dir, fingerprint)

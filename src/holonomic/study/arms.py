@@ -94,10 +94,12 @@ def check_layer_selections(config: "StudyConfig", in_features: int, n_outputs: i
                 build_model(config.model, in_features, n_outputs, config.seeds[0], **options)
         if REGULARISERS[arm.regulariser].selects_layers:
             select_weights(model, *arm.layer_selection(config.model))
-        if arm.groups:
-            from holonomic.study.optimisers import param_groups
+        from holonomic.study.optimisers import check_thermostat, param_groups
 
-            param_groups(model, arm, _defaults(config) | dict(arm.trials[0].settings))
+        for trial in arm.trials:  # groups match, thermostats have a temperature
+            settings = _defaults(config) | dict(trial.settings)
+            params = param_groups(model, arm, settings)[0] if arm.groups else []
+            check_thermostat(params, settings, arm.optimiser, arm.name)
 
 
 def _measured(model: nn.Module, setup: ArmSetup | None) -> list[torch.Tensor]:

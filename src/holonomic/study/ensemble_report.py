@@ -85,7 +85,8 @@ def ensemble_summary(config: StudyConfig, records: dict[str, dict],
         sel = chosen[arm.name]
         if arm.ensemble is None or sel.index is None:
             continue
-        runs = [records[RunSpec(arm.name, sel.index, arm.trials[sel.index].settings, s).key]["ensemble"]
+        settings = arm.trials[sel.index].settings
+        runs = [records[RunSpec(arm.name, sel.index, settings, s).key]["ensemble"]
                 for s in config.seeds]
         ok = [(seed, r) for seed, r in zip(config.seeds, runs) if r["status"] == "ok"]
         entry: dict[str, Any] = {

@@ -48,6 +48,7 @@ __all__ = [
     "check_model",
     "data_fingerprint",
     "prepare_runs",
+    "halving_full_runs",
     "halving_rung",
     "halving_survivors",
     "run_all",
@@ -462,6 +463,22 @@ def halving_survivors(config: StudyConfig, records: dict[str, dict], metric: str
     return kept, means
 
 
+def halving_full_runs(config: StudyConfig, records: dict[str, dict],
+                      ) -> tuple[list[RunSpec], dict[str, list[int]], dict[str, list[float]],
+                                 str]:
+    """The full runs successive halving trains after its rung (``records`` holds every rung
+    run): ``(specs, kept trials per arm, rung means per arm, selection metric)``."""
+    from holonomic.study.config import selection_metric
+    from holonomic.study.runner import study_task
+
+    task = study_task(config)
+    metric = selection_metric(config, task)
+    kept, means = halving_survivors(config, records, metric,
+                                    task.higher_is_better(metric.removeprefix("val_")))
+    full = [spec for spec in plan_runs(config) if spec.trial in kept[spec.arm]]
+    return full, kept, means, metric
+
+
 def run_halving(config: StudyConfig, out_dir: str | Path, workers: int = 1,
                 progress: bool = True, done: dict[str, dict] | None = None,
                 ) -> dict[str, dict]:
@@ -472,16 +489,9 @@ def run_halving(config: StudyConfig, out_dir: str | Path, workers: int = 1,
     the rung run's). The rung's kept and dropped trials are written to
     ``out_dir/halving.json``. Returns every record, rung runs (``budget_fraction = f``)
     and full runs."""
-    from holonomic.study.runner import study_task
-    from holonomic.study.config import selection_metric
-
-    task = study_task(config)
-    metric = selection_metric(config, task)
     rung = halving_rung(config)
     records = run_all(config, out_dir, workers, progress, specs=rung, done=done)
-    kept, means = halving_survivors(config, records, metric,
-                                    task.higher_is_better(metric.removeprefix("val_")))
-    full = [spec for spec in plan_runs(config) if spec.trial in kept[spec.arm]]
+    full, kept, means, metric = halving_full_runs(config, records)
     storage.atomic_write_text(Path(out_dir) / HALVING_RECORD, storage.dumps({
         "fraction": config.halving, "metric": metric,
         "kept": kept,

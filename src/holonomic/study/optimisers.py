@@ -41,7 +41,8 @@ if TYPE_CHECKING:
     from holonomic.study.config import ArmConfig, BudgetConfig
 
 __all__ = ["HYPERPARAMETERS", "OPTIMISERS", "Hyperparameter", "OptimiserSpec",
-           "budget_defaults", "decoupled_decay", "group_settings", "param_groups"]
+           "budget_defaults", "check_thermostat", "decoupled_decay", "group_settings",
+           "param_groups"]
 
 
 @dataclass(frozen=True)
@@ -199,6 +200,29 @@ def decoupled_decay(optimizer: torch.optim.Optimizer, strength: float) -> Callab
                 for p in group["params"]:
                     p.mul_(factor)
     return decay
+
+
+def check_thermostat(params: Any, settings: Mapping[str, float], optimiser: str,
+                     arm: str = "NAME") -> None:
+    """Refuse ``adaptive_langevin`` with a param group that adapts at temperature 0 (the
+    thermostat targets ``T > 0``). ``params``: a list of parameters (one group at the
+    trial's temperature) or of param-group dicts (:func:`param_groups`).
+
+    Raises:
+        StudyConfigError: naming ``arms.ARM.temperature`` and the allowed values.
+    """
+    if optimiser != "adaptive_langevin":
+        return
+    groups = params if isinstance(params, list) and params and all(
+        isinstance(g, dict) for g in params) else [{}]
+    for group in groups:
+        temperature = group.get("temperature", settings["temperature"])
+        if group.get("adaptive", True) and not temperature > 0:
+            raise StudyConfigError(
+                f"study config: 'arms.{arm}.temperature' = {temperature!r} for a group that "
+                "adapts: optimiser 'adaptive_langevin' needs temperature > 0 there (the "
+                "thermostat targets it); allowed: > 0 (fix or search it), or give that "
+                "group adaptive = false in [[arms." + arm + ".groups]]")
 
 
 def group_settings(base: Mapping[str, float], group: Mapping[str, Any],

@@ -220,13 +220,16 @@ REGULARISERS: dict[str, RegulariserSpec] = {spec.name: spec for spec in (
                     "each step (all parameters; AdamW's weight_decay)", (1e-4, 1e-1),
                     _decoupled, minimum_open=False),
     RegulariserSpec("max_norm", "ball radius c: each selected unit's incoming weights (a row; "
-                    "a conv output channel's kernel) clipped to |w| <= c", (0.25, 4.0), _max_norm, selects_layers=True),
+                    "a conv output channel's kernel) clipped to |w| <= c", (0.25, 4.0), _max_norm,
+                    selects_layers=True),
     RegulariserSpec("fixed_norm", "row radius r: each selected unit's incoming weights (a row; "
-                    "a conv output channel's kernel) held at |w| = r", (0.25, 4.0), _constrain("fixed_norm"),
+                    "a conv output channel's kernel) held at |w| = r", (0.25, 4.0),
+                    _constrain("fixed_norm"),
                     optimisers=HOLONOMIC_OPTIMISERS, instead=_SELECTING_INSTEAD,
                     selects_layers=True),
     RegulariserSpec("orthonormal", "scale s: selected weights (conv kernels as out x in*k "
-                    "matrices) held at W W^T = s^2 I (rows) or W^T W = s^2 I", (0.25, 4.0), _constrain("orthonormal"),
+                    "matrices) held at W W^T = s^2 I (rows) or W^T W = s^2 I", (0.25, 4.0),
+                    _constrain("orthonormal"),
                     optimisers=HOLONOMIC_OPTIMISERS, instead=_SELECTING_INSTEAD,
                     selects_layers=True),
     RegulariserSpec("dropout", "dropout rate p in [0, 1) after each hidden activation",

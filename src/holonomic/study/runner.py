@@ -60,8 +60,8 @@ from holonomic.study.ensemble import run_ensemble_phase, skipped_phase
 from holonomic.study.loop import (FOLD_SEED_OFFSET, epoch_order, evaluation_mode,
                                   minibatch_step, model_rng, run_minibatches)
 from holonomic.study.models import build_model
-from holonomic.study.optimisers import (OPTIMISERS, budget_defaults, decoupled_decay,
-                                        param_groups)
+from holonomic.study.optimisers import (OPTIMISERS, budget_defaults, check_thermostat,
+                                        decoupled_decay, param_groups)
 from holonomic.study.regularisers import REGULARISERS, ArmSetup
 from holonomic.study.tasks import PARTS, Task
 
@@ -195,25 +195,17 @@ def resolve_settings(arm: ArmConfig, budget: BudgetConfig,
 
 def make_optimizer(params: Iterable[Any], budget: BudgetConfig | StudyConfig,
                    weight_decay: float, seed: int, optimiser: str = "langevin",
-                   settings: Mapping[str, float] | None = None) -> torch.optim.Optimizer:
+                   settings: Mapping[str, float] | None = None,
+                   arm: str = "NAME") -> torch.optim.Optimizer:
     """The arm's optimiser from :data:`holonomic.study.optimisers.OPTIMISERS`
     (``holonomic.Langevin`` with the budget's settings by default). ``weight_decay``: the
     L2 coefficient in the potential, or the decoupled decay for an optimiser that applies
-    it itself (``adamw``)."""
+    it itself (``adamw``); ``arm`` names the arm in error messages."""
     if isinstance(budget, StudyConfig):
         budget = budget.budget
     settings = budget_defaults(budget) if settings is None else settings
     spec = OPTIMISERS[optimiser]
-    if optimiser == "adaptive_langevin":
-        groups = params if isinstance(params, list) and params and all(
-            isinstance(g, dict) for g in params) else [{}]
-        for group in groups:
-            if group.get("adaptive", True) and not group.get("temperature",
-                                                             settings["temperature"]) > 0:
-                raise StudyConfigError(
-                    "study config: optimiser 'adaptive_langevin' needs temperature > 0 in "
-                    "every adaptive group (the thermostat targets it); set the arm's "
-                    "temperature (or search it) > 0, or give that group adaptive = false")
+    check_thermostat(params, settings, optimiser, arm)
     return spec.build(params, settings, seed, budget, weight_decay)
 
 
@@ -367,7 +359,7 @@ def _build(config: StudyConfig, recipe: _Recipe, in_features: int, n_outputs: in
         decay = setup.decoupled_weight_decay
     optimizer = make_optimizer(params, config.budget, decay,
                                recipe.seed + FOLD_SEED_OFFSET * fold, arm.optimiser,
-                               recipe.settings)
+                               recipe.settings, arm.name)
     if setup.decoupled_weight_decay and not opt.native_decoupled_decay:
         clip, shrink = setup.after_step, decoupled_decay(optimizer,
                                                         setup.decoupled_weight_decay)

@@ -2,13 +2,15 @@
 
 Every finished run of a study saves its trained network next to its record::
 
-    DIR/runs/<key>.pt              hold-out data (key: <arm>-<strength>-s<seed>)
+    DIR/runs/<key>.pt              hold-out data (key: holonomic.study.storage.run_key)
     DIR/runs/<key>.fold<j>.pt      k-fold data, one file per fold j = 0 .. k-1
 
 The file is written (temporary file, fsync, rename) before the run's record
 ``DIR/runs/<key>.json``, whose ``"weights_file"`` (``"weights_files"`` for every fold) names
 it relative to ``DIR``; a run that failed or diverged saves none (``weights_file`` null).
-For an arm with an ensemble phase these are the trained weights, before sampling.
+For an arm with an ensemble phase these are the trained weights, before sampling. A model
+its regulariser changed when building it (dropout) records how (``model_options``), so
+:func:`rebuild_model` builds the same network.
 
 The file holds only tensors and plain values, so it loads with
 ``torch.load(path, weights_only=True)``:
