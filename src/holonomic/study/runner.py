@@ -53,8 +53,8 @@ from torch import nn
 
 from holonomic.study import storage
 from holonomic.study.arms import constraint_residual, weight_norms
-from holonomic.study.config import (ArmConfig, BudgetConfig, StudyConfig, StudyConfigError,
-                                    selection_metric)
+from holonomic.study.config import (ArmConfig, BudgetConfig, ModelConfig, StudyConfig,
+                                    StudyConfigError, selection_metric)
 from holonomic.study.data import Dataset, Split, load_dataset, make_splits
 from holonomic.study.ensemble import run_ensemble_phase, skipped_phase
 from holonomic.study.loop import (FOLD_SEED_OFFSET, epoch_order, evaluation_mode,
@@ -341,7 +341,8 @@ class _Recipe:
     budget_fraction: float = 1.0
 
 
-def _build(config: StudyConfig, recipe: _Recipe, in_features: int, n_outputs: int,
+def _build(model_config: ModelConfig, budget: BudgetConfig, recipe: _Recipe,
+           in_features: int, n_outputs: int,
            fold: int, dtype: torch.dtype,
            ) -> tuple[nn.Module, ArmSetup, torch.optim.Optimizer, list[dict[str, Any]]]:
     """Model (dropout when the regulariser asks), regulariser applied, optimiser built."""
@@ -349,15 +350,15 @@ def _build(config: StudyConfig, recipe: _Recipe, in_features: int, n_outputs: in
     reg = REGULARISERS[arm.regulariser]
     opt = OPTIMISERS[arm.optimiser]
     strength = recipe.settings.get("strength", 0.0)
-    model = build_model(config.model, in_features, n_outputs, recipe.seed, dtype,
+    model = build_model(model_config, in_features, n_outputs, recipe.seed, dtype,
                         **reg.model_options(strength))
-    selection, key = arm.layer_selection(config.model)
+    selection, key = arm.layer_selection(model_config)
     setup: ArmSetup = reg.apply(model, strength, selection, key)
     params, groups = param_groups(model, arm, recipe.settings)
     decay = setup.weight_decay
     if opt.native_decoupled_decay:
         decay = setup.decoupled_weight_decay
-    optimizer = make_optimizer(params, config.budget, decay,
+    optimizer = make_optimizer(params, budget, decay,
                                recipe.seed + FOLD_SEED_OFFSET * fold, arm.optimiser,
                                recipe.settings, arm.name)
     if setup.decoupled_weight_decay and not opt.native_decoupled_decay:
@@ -367,18 +368,18 @@ def _build(config: StudyConfig, recipe: _Recipe, in_features: int, n_outputs: in
     return model, setup, optimizer, groups
 
 
-def _train_fold(config: StudyConfig, recipe: _Recipe, split: Split, fold: int,
+def _train_fold(model_config: ModelConfig, budget: BudgetConfig, recipe: _Recipe,
+                split: Split, fold: int,
                 hooks: list[StepHook], where: str = "") -> _FoldRun:
     """Train one model on one split (the whole run for hold-out data); ``where`` prefixes
     failure messages (``"fold j "`` for k-fold data)."""
-    budget = config.budget
     dtype = _DTYPES[budget.dtype]
     task = split.task
     data = _tensors(split, dtype, task)
     targets = _targets(split)
     x_train, y_train = data["train"]
     n_train = len(y_train)
-    model, setup, optimizer, groups = _build(config, recipe, x_train.shape[1],
+    model, setup, optimizer, groups = _build(model_config, budget, recipe, x_train.shape[1],
                                              task.n_outputs, fold, dtype)
     total_steps = _planned_steps(budget, n_train)  # the full run's schedule, also for a rung
     scheduler = None
@@ -498,7 +499,7 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         fold_hooks = list(default_step_hooks(config.audit_every, spec, out_dir,
                                              None if k == 1 else j)
                           if hooks is None else hooks)
-        runs.append(_train_fold(config, recipe, split, j, fold_hooks,
+        runs.append(_train_fold(config.model, config.budget, recipe, split, j, fold_hooks,
                                 "" if k == 1 else f"fold {j} "))
         if runs[-1].status != "ok":
             break
