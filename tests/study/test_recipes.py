@@ -303,10 +303,10 @@ BAD_INPUTS = [
     ({"regulariser": "none", "optimiser": "adam"},
      ["'arms.x.optimiser'", "langevin, adaptive_langevin, overdamped_langevin, sgd, adamw"]),
     ({"regulariser": "fixed_norm", "optimiser": "adamw", "strength": 1.0},
-     ["'arms.x'", "allowed optimisers for it: langevin, adaptive_langevin, "
+     ["'arms.x.optimiser' = 'adamw'", "allowed optimisers for it: langevin, adaptive_langevin, "
       "overdamped_langevin", "max_norm"]),
     ({"regulariser": "weight_decay", "optimiser": "adamw", "strength": 1e-3},
-     ["'arms.x'", "allowed optimisers for it", "decoupled_weight_decay"]),
+     ["'arms.x.optimiser'", "allowed optimisers for it", "decoupled_weight_decay"]),
     ({"regulariser": "none", "optimiser": "adamw", "momentum": 0.9},
      ["'arms.x.momentum'", "settable for this arm: lr"]),
     ({"regulariser": "none", "strength": 0.1},

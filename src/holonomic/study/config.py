@@ -1067,8 +1067,8 @@ def _parse_arm(name: str, body: Any, uses_grid: bool, defaults: Mapping[str, flo
     optimiser = _get_str(body, "optimiser", where, "langevin", tuple(OPTIMISERS))
     reg, opt = REGULARISERS[regulariser], OPTIMISERS[optimiser]
     if reg.optimisers is not None and optimiser not in reg.optimisers:
-        raise _fail(f"'{where}': regulariser {regulariser!r} does not work with optimiser "
-                    f"{optimiser!r}; allowed optimisers for it: {', '.join(reg.optimisers)}. "
+        raise _fail(f"'{where}.optimiser' = {optimiser!r} does not work with regulariser "
+                    f"{regulariser!r}; allowed optimisers for it: {', '.join(reg.optimisers)}. "
                     + reg.instead.format(opt=repr(optimiser)))
     ensemble = None
     if "ensemble" in body:

@@ -204,7 +204,7 @@ class RegulariserSpec:
         return f"{low} and {'<' if self.maximum_open else '<='} {self.maximum:g}"
 
 
-_SELECTING_INSTEAD = ("use optimiser = \"langevin\", \"adaptive_langevin\" or "
+_SELECTING_INSTEAD = ("Use optimiser = \"langevin\", \"adaptive_langevin\" or "
                       "\"overdamped_langevin\" (they hold the weights on the constraint set), "
                       "or regulariser = \"max_norm\" (a projection after each step) with {opt}")
 
