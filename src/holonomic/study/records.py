@@ -36,6 +36,8 @@ __all__ = ["EnsemblePhase", "FoldDetail", "InvalidRecordField", "LEGACY_OPTIMISE
 
 #: The optimiser of every run made before recipes existed.
 LEGACY_OPTIMISER = "langevin"
+#: The ``path`` of an error about a record that was not read from a file.
+_NO_PATH = "run record"
 #: Keys of a record made before issue 14 that every record must have.
 _REQUIRED = ("key", "arm", "seed", "status", "metrics")
 
@@ -48,6 +50,8 @@ class InvalidRecordField(InvalidRunRecord):
                  field: str = "") -> None:
         super().__init__(path, problem, key)
         self.field = field
+        if str(path) == _NO_PATH:  # a record not read from a file: no file advice
+            self.args = (f"not a valid run record: {problem}",)
 
     def __reduce__(self):
         return (type(self), (self.path, self.problem, self.key, self.field))
@@ -71,7 +75,7 @@ class _Checker:
     """Raises :class:`InvalidRecordField` for the record read from ``path``."""
 
     def __init__(self, path: str | Path | None) -> None:
-        self.path = "run record" if path is None else str(path)
+        self.path = _NO_PATH if path is None else str(path)
 
     def fail(self, name: str, problem: str) -> InvalidRecordField:
         return InvalidRecordField(self.path, problem, field=name)
@@ -202,13 +206,14 @@ class FoldDetail:
         where = f"fold_details[{index}]."
         if not isinstance(data, dict):
             raise check.fail(where[:-1], f"'{where[:-1]}' must be an object, got {data!r:.60}")
-        for name in ("fold", "status", "n_train"):
-            if name not in data:
-                raise check.fail(where + name, f"'{where[:-1]}' lacks the key '{name}'")
-        check.require(data, "fold", _is_int, "an integer", where)
+        if "n_train" not in data:
+            raise check.fail(where + "n_train", f"'{where[:-1]}' lacks the key 'n_train'")
         check.require(data, "n_train", _is_int, "an integer", where)
+        check.optional(data, "fold", _is_int, "an integer", where=where)
+        check.optional(data, "status", lambda v: isinstance(v, str), "a string", where=where)
         known = {f.name for f in fields(cls)} - {"extra"}
-        return cls(fold=data["fold"], status=data["status"], n_train=data["n_train"],
+        return cls(fold=data.get("fold", index), status=data.get("status", "ok"),
+                   n_train=data["n_train"],
                    message=data.get("message", ""), steps_done=data.get("steps_done", 0),
                    hooks=dict(data.get("hooks") or {}), weights_file=data.get("weights_file"),
                    extra={k: v for k, v in data.items() if k not in known})

@@ -447,8 +447,7 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
             "max_seeds": MAX_SEEDS,
         },
         "runs": {"total": len(typed), "ok": statuses.count("ok"),
-                 "failed": statuses.count("failed"), "diverged": statuses.count("diverged"),
-                 "rung_runs": len(typed) - len(full)},
+                 "failed": statuses.count("failed"), "diverged": statuses.count("diverged")},
         "grad_evals_per_run": grad_evals,
         "arms": arm_entries(chosen, metrics, meanings),
         "verdict": verdict,
@@ -458,8 +457,9 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
         "audit": audit_summary(typed, list(chosen)),
         "ensembles": ensemble_summary(chosen),
         "legacy_records": all(r.legacy for r in typed.values()),
-        "halving": any(sel.budget is not None and sel.budget.rungs
-                       for sel in chosen.values()),
+        "halving": {"used": any(sel.budget is not None and sel.budget.rungs
+                                for sel in chosen.values()),
+                    "rung_runs": len(typed) - len(full)},
     }
 
 
