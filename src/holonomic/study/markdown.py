@@ -133,8 +133,13 @@ def _setup_lines(config: Any, summary: dict[str, Any], description: str,
               "(paired design).",
               f"- Runs: {summary['runs']['total']} ({summary['runs']['ok']} finished, "
               f"{summary['runs']['failed']} failed integration steps, "
-              f"{summary['runs']['diverged']} diverged).", ""]
+              f"{summary['runs']['diverged']} diverged{_rung_text(summary)}).", ""]
     return lines
+
+
+def _rung_text(summary: dict[str, Any]) -> str:
+    rungs = (summary.get("halving") or {}).get("rung_runs", 0)
+    return f"; {rungs} of them successive-halving rung runs" if rungs else ""
 
 
 def _training_line(config: Any, summary: dict[str, Any], loss: str) -> str:
@@ -211,11 +216,19 @@ def _split_caveat(config: Any) -> str:
 
 
 def _arm_lines(config: Any, summary: dict[str, Any]) -> list[str]:
-    lines = ["## Arms", "", "| arm | strength means | grid | parameters it constrained |",
-             "|---|---|---|---|"]
-    for name, arm in summary["arms"].items():
-        lines.append(f"| {name} | {arm['meaning']} | {arm['grid']} | "
-                     f"{', '.join(f'`{p}`' for p in arm['layers']) or '-'} |")
+    if summary.get("legacy_records", True):
+        lines = ["## Arms", "", "| arm | strength means | grid | parameters it constrained |",
+                 "|---|---|---|---|"]
+        for name, arm in summary["arms"].items():
+            lines.append(f"| {name} | {arm['meaning']} | {arm['grid']} | "
+                         f"{', '.join(f'`{p}`' for p in arm['layers']) or '-'} |")
+    else:
+        lines = ["## Arms", "", "| arm | regulariser | strength means | parameters it "
+                 "constrained |", "|---|---|---|---|"]
+        for name, arm in summary["arms"].items():
+            regulariser = (arm.get("recipe") or {}).get("regulariser", "-")
+            lines.append(f"| {name} | {regulariser} | {arm['meaning'] or '-'} | "
+                         f"{', '.join(f'`{p}`' for p in arm['layers']) or '-'} |")
     lines += ["", "The last column is what each arm's runs recorded (run record `layers`): "
               "the parameters the arm constrained or clipped. Parameters not listed (the "
               "output layer and biases unless listed) were left free; weight decay acts on "
@@ -232,12 +245,15 @@ def _arm_lines(config: Any, summary: dict[str, Any]) -> list[str]:
     return lines + [""]
 
 
-def _protocol_lines(metrics: StudyMetrics, baseline: str = BASELINE_ARM) -> list[str]:
+def _protocol_lines(metrics: StudyMetrics, baseline: str = BASELINE_ARM,
+                    legacy: bool = True) -> list[str]:
     larger = metrics.higher_is_better(metrics.selection_base)
     lines = ["## Protocol", "",
-             f"- Each arm's setting is the grid point with the best mean `{metrics.selection}` "
-             f"over seeds ({'larger' if larger else 'smaller'} is better; validation split "
-             "only).",
+             f"- Each arm's setting is the {'grid point' if legacy else 'trial'} with the "
+             f"best mean `{metrics.selection}` over seeds ({'larger' if larger else 'smaller'}"
+             " is better; validation split only"
+             + ("" if legacy else "; full-budget runs only, ties to the earlier trial")
+             + ").",
              "- Test metrics were computed for every run (they are in `results.csv`, so "
              "resuming needs no recomputation) but were never used to choose a setting; "
              "this report quotes test numbers only for the chosen settings.",
@@ -324,7 +340,7 @@ def report_markdown(config: Any, summary: dict[str, Any], description: str,
     lines += _arm_lines(config, summary)
     baseline = summary.get("baseline", BASELINE_ARM)
     lines += _budget_lines(summary)
-    lines += _protocol_lines(metrics, baseline)
+    lines += _protocol_lines(metrics, baseline, summary.get("legacy_records", True))
     lines += _validation_lines(summary, metrics)
     lines += [""] + _chosen_table(summary, metrics)
     lines += ["", f"## Paired comparison against {baseline}", "",

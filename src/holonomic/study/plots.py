@@ -108,13 +108,15 @@ def _chosen_trial(trials: list[TrialRuns], sel) -> int | None:
 
 
 def _scan_axis(ax, xs) -> None:
-    """Log x axis when every value is > 0 (and they span more than 20x), symlog when 0 is
-    among them (linear up to the smallest positive value)."""
+    """Log x axis when every value is > 0, symlog when 0 is among them (linear up to the
+    smallest positive value); linear with one value only."""
     xs = np.asarray(xs, dtype=np.float64)
     positive = xs[xs > 0]
-    if len(positive) == len(xs) and len(xs) and positive.max() / positive.min() > 20:
+    if len(set(xs.tolist())) < 2:
+        return
+    if len(positive) == len(xs):
         ax.set_xscale("log")
-    elif len(positive) and (xs == 0).any() and len(positive) > 1:
+    elif len(positive) and (xs >= 0).all():  # 0 and positive values
         ax.set_xscale("symlog", linthresh=float(positive.min()))
 
 
