@@ -324,3 +324,44 @@ def test_temperature_scan_uses_a_log_axis_when_every_temperature_is_positive(tmp
     names = [n for n, _, f in build_figures(config, flat, select_settings(config, flat))]
     plt.close("all")
     assert "selection_vs_temperature.png" not in names
+
+
+def test_ensemble_section_reads_the_chosen_trials_runs(tmp_path):
+    records = _records()
+    for record in records.values():
+        if record["arm"] == "hot":
+            shift = 0.01 * (record["trial"] == BEST["hot"])
+            record["ensemble"] = {
+                "settings": {"temperature": 1.0, "samples": 4, "every": 2, "burn_in": 3,
+                             "sampler": "adaptive", "step": 0.01, "friction": 1.0},
+                "sampler": "AdaptiveLangevin",
+                "status": "ok", "message": "", "steps_done": 4, "samples": 4,
+                "single": {"val": {"accuracy": 0.7}, "test": {"accuracy": 0.7 + shift}},
+                "ensemble": {"val": {"accuracy": 0.72},
+                             "test": {"accuracy": 0.72 + shift + 0.001 * record["seed"]}},
+                "traces": {"train_loss": [0.5 + 0.01 * ((record["seed"] + i) % 3)
+                                          for i in range(6)]},
+                "constraint_residual": 0.0, "wall_s": 0.0}
+    summary = write_outputs(_study(), tmp_path, records, "invented", plots=False)
+    assert list(summary["ensembles"]) == ["hot"]
+    entry = summary["ensembles"]["hot"]["metrics"]["accuracy"]
+    # the chosen trial's phases (shift 0.01), paired by seed: ensemble - single
+    assert entry["single_mean"] == pytest.approx(0.71)
+    assert entry["difference"]["differences"] == pytest.approx([0.02, 0.021, 0.022])
+    assert f"### hot (trial {BEST['hot']})" in (tmp_path / "report.md").read_text()
+    rows = list(csv.DictReader(io.StringIO((tmp_path / "results.csv").read_text())))
+    assert {r["ensemble_status"] for r in rows if r["arm"] == "hot"} == {"ok"}
+    assert {r["ensemble_status"] for r in rows if r["arm"] != "hot"} == {""}
+
+
+def test_metric_names_come_from_a_finished_run():
+    records = _records()
+    first = next(iter(records))
+    records[first]["status"] = "failed"
+    records[first]["metrics"] = {}
+    from holonomic.study.selection import read_metrics
+
+    metrics = read_metrics(records)
+    assert metrics.selection == "val_accuracy" and "test_accuracy" in metrics.names
+    with pytest.raises(ValueError, match="allowed: val_accuracy"):
+        read_metrics(records, "val_rmse")

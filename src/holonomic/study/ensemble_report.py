@@ -94,6 +94,8 @@ def ensemble_summary(chosen: Mapping[str, Any]) -> dict[str, Any]:
         entry: dict[str, Any] = {
             "task": sel.runs[0].task,
             "strength": sel.strength,
+            "trial": sel.index,
+            "chosen_settings": dict(sel.settings),
             "settings": runs[0]["settings"],
             "sampler": runs[0]["sampler"],
             "seeds_ok": [seed for seed, _ in ok],
@@ -172,7 +174,10 @@ def ensemble_lines(summary: dict[str, Any]) -> list[str]:
              "predictive spread describe the predictions and are neither."]
     for name, entry in summary.items():
         s = entry["settings"]
-        lines += ["", f"### {name} (strength {entry['strength']:g})", "",
+        chosen = entry.get("chosen_settings") or {}
+        which = (f"strength {entry['strength']:g}" if set(chosen) <= {"strength"}
+                 else f"trial {entry['trial']}")
+        lines += ["", f"### {name} ({which})", "",
                   f"- Sampler `{entry['sampler']}`, T = {s['temperature']:g}, {s['samples']} "
                   f"samples every {s['every']} steps after a burn-in of {s['burn_in']} steps; "
                   f"step {s['step']:.4g}, friction {s['friction']:.4g} (units of the force "

@@ -92,7 +92,7 @@ class StudyMetrics:
 def read_metrics(records: Mapping[str, Any], selection: str | None = None,
                  first: RunRecord | None = None) -> StudyMetrics:
     """The task and metric names of a study, read from its records (``first``, else the
-    first record), and the selection metric ``selection`` (None: the task's default,
+    first finished record), and the selection metric ``selection`` (None: the task's default,
     ``val_<headline>``).
 
     Raises:
@@ -103,7 +103,8 @@ def read_metrics(records: Mapping[str, Any], selection: str | None = None,
     if first is None:
         if not typed:
             raise ValueError("no run records: nothing to report")
-        first = next(iter(typed.values()))
+        # a finished run holds every metric of its task; a failed one may hold none
+        first = next((r for r in typed.values() if r.ok), next(iter(typed.values())))
     names = tuple(first.metrics)
     name = first.task
     n_classes = int(recorded_n_classes(name, first.n_classes or None, names))
