@@ -195,6 +195,15 @@ def test_old_records_are_reported_as_before(tmp_path, name, config, records):
     assert sorted(lost) == sorted(line for line in (golden / "report.md").read_text()
                                   .splitlines() if line.startswith(_REWORDED))
     assert len(lost) == len(_REWORDED)
-    assert "## Budget and chosen setting per arm" in report
+    # and what is new is the scope line, the budget section and the reworded lines
+    old_lines = set((golden / "report.md").read_text().splitlines())
+    start, end = report.index("## Budget and chosen setting per arm"), report.index("## Protocol")
+    added = [line for i, line in enumerate(report) if line not in old_lines
+             and not start <= i < end]
+    assert [line for line in added if not line.startswith((
+        "What this shows: a tuned comparison", "- Holm's adjustment corrects over the arms",
+        "- The max-norm arm clips after each optimiser step",
+        "- Chosen at the edge of what was searched:", "- `results.csv`: one row per run"))] == []
+    assert not any(line.startswith("- Temperature scan") for line in report)
     rows = list(csv.reader(io.StringIO((tmp_path / "results.csv").read_text())))
     assert len(rows) == 1 + len(records)

@@ -262,6 +262,8 @@ def test_temperature_scan_is_drawn_listed_and_written(written):
     records, summary, report, out = written
     assert (out / "selection_vs_temperature.png").stat().st_size > 0
     assert "- `selection_vs_temperature.png`: temperature scan" in report
+    assert "- Temperature scan (hot: `selection_vs_temperature.png`)" in report
+    assert "not that a range of temperatures helps" in report
     assert any(p.startswith("selection_vs_temperature.png") for p in summary["plots"])
     config = _study()
     from holonomic.study.report import select_settings

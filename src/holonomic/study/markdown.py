@@ -530,6 +530,14 @@ def _caveat_lines(config: Any, summary: dict[str, Any], metrics: StudyMetrics,
         lines += ["- Chosen at the edge of what was searched: " + ", ".join(edges) + " (see "
                   "\"Budget and chosen setting per arm\"). The best setting may lie outside "
                   "the range searched; widen it before drawing conclusions.", ""]
+    scanned = [name for name, arm in summary["arms"].items()
+               if len({float(t["temperature"]) for t in arm.get("trial_settings", [])
+                       if "temperature" in t}) > 1]
+    if scanned:
+        lines += [f"- Temperature scan ({', '.join(scanned)}: `selection_vs_temperature.png`): "
+                  "the validation means of the full-budget trials against their temperature. "
+                  "With a few trials, few seeds and other settings varying between trials, "
+                  "it shows where to look, not that a range of temperatures helps.", ""]
     if summary["runs"]["ok"] < summary["runs"]["total"]:
         lines += ["- Some runs failed or diverged (NaN metrics in results.csv); settings with "
                   "a failed seed were not eligible for selection.", ""]
@@ -549,7 +557,8 @@ def _file_lines(summary: dict[str, Any], plots: list[str]) -> list[str]:
              "- `results.csv`: one row per run (arm, trial and seed, with the trial's "
              "settings, optimiser and regulariser; `chosen` flags the selected settings; "
              "`budget_fraction` < 1 marks a successive-halving rung run); `summary.json`: "
-             "the numbers in this report; `runs/`: one record per run with its per-epoch history and audit summary; `audits/`: one audit per run; "
+             "the numbers in this report; `runs/`: one record per run with its per-epoch "
+             "history and audit summary; `audits/`: one audit per run; "
              "`study.json`: the study definition the runs were made with."]
     if summary["data"]["weights_files"]:
         per_fold = (", `runs/<run key>.fold<j>.pt` per fold j with k-fold data"

@@ -3,9 +3,10 @@ against temperature, learning curves, weights.
 
 The figures read run records and each arm's :class:`~holonomic.study.selection.Selection`
 (plain data: an arm's trials are found from the records, grouped by ``(arm, trial)``; only
-full-budget runs are drawn). Every figure draws each arm in the same colour (:data:`ARM_COLOURS`), epochs on integer
-ticks, spreads as the standard error over seeds, and nothing at a zero on a log axis (a
-zero residual is left out, not drawn at an invented floor).
+full-budget runs are drawn). Every figure draws each arm in the same colour
+(:func:`arm_colours`), epochs on integer ticks, spreads as the standard error over seeds,
+and nothing at a zero on a log axis (a zero residual is left out, not drawn at an invented
+floor).
 """
 
 from __future__ import annotations

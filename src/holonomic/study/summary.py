@@ -21,7 +21,7 @@ from scipy import stats as sps
 
 from holonomic.study.ensemble_report import ensemble_metric_names, ensemble_summary
 from holonomic.study.records import RunRecord, as_records
-from holonomic.study.selection import Selection, StudyMetrics, group_trials
+from holonomic.study.selection import Selection, StudyMetrics
 from holonomic.study.stats import (
     ALPHA, MAX_SEEDS, POWER, comparison_note, holm_adjust, paired_comparison, seeds_needed,
     wilcoxon_min_p)
