@@ -157,7 +157,8 @@ def fabricate_trials(arms: dict[str, dict[str, Any]], seeds=(0, 1, 2),
                                      q, ran, n_train, residual, False,
                                      recipe["regulariser"] in ("fixed_norm", "orthonormal"),
                                      recipe["regulariser"] == "max_norm")
-                    record.update(trial=i, settings=settings, searched=varying, recipe=recipe,
+                    record.update(trial=i, settings=settings, trial_settings=settings,
+                                  searched=varying, recipe=recipe,
                                   budget_fraction=fraction, epochs=ran,
                                   grad_evals=int(round(fraction * grad_evals)),
                                   fingerprint="fabricated")

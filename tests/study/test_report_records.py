@@ -91,6 +91,8 @@ def test_old_record_is_filled_in():
     (lambda d: d.update(setting_index=5), "setting_index", "differs from 'trial'"),
     (lambda d: d.update(settings={"lr": "fast"}), "settings", "'settings' must be an object"),
     (lambda d: d.update(searched=["momentum"]), "searched", "'momentum'"),
+    (lambda d: d.update(trial_settings={"lr": None}), "trial_settings",
+     "'trial_settings' must be an object of numbers"),
     (lambda d: d.update(strength=0.5), "strength", "differs from the strength of its"),
     (lambda d: d["recipe"].pop("optimiser"), "recipe.optimiser", "lacks the key 'optimiser'"),
     (lambda d: d["recipe"].update(groups=[{"layers": "0.*"}]), "recipe.groups[0].layers",
@@ -136,6 +138,19 @@ def test_keys_are_checked_for_old_style_records_and_by_a_given_key_function():
     assert info.value.field == "key"
     # a record not read from a file: the message gives no file advice
     assert "--rerun-invalid" not in str(info.value)
+    # an old grid arm run by the recipe runner: resolved settings hold lr and momentum, the
+    # trial's own point (trial_settings, what the key is made of) only the strength; a
+    # halving rung run adds -h<fraction>
+    runner = {**data, "key": "weight_decay-0.01-s0-h0.25", "trial": 0,
+              "settings": {"lr": 0.05, "momentum": 0.9, "strength": 0.01},
+              "trial_settings": {"strength": 0.01}, "searched": ["strength"],
+              "recipe": {"regulariser": "weight_decay", "optimiser": "langevin", "groups": []},
+              "budget_fraction": 0.25, "epochs": 1}
+    record = read_record(runner)
+    assert record.trial_settings == {"strength": 0.01} and not record.full
+    assert record.to_dict() == runner
+    with pytest.raises(InvalidRecordField, match="key 'weight_decay-0.01-s0-h0.25'"):
+        read_record({**runner, "key": "weight_decay-0.01-s0"})
     new = _new_record()
     with pytest.raises(InvalidRecordField, match="key 'expected'"):
         read_record(new, run_key=lambda record: "expected")

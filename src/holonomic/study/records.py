@@ -57,10 +57,12 @@ class InvalidRecordField(InvalidRunRecord):
         return (type(self), (self.path, self.problem, self.key, self.field))
 
 
-def legacy_key(arm: str, strength: float, seed: int) -> str:
-    """The key of a run made before recipes (``f"{arm}-{strength!r}-s{seed}"``), which an
-    old-style arm (settings ``{"strength": x}`` only, full budget) keeps."""
-    return f"{arm}-{float(strength)!r}-s{seed}"
+def legacy_key(arm: str, strength: float, seed: int, budget_fraction: float = 1.0) -> str:
+    """The key of a run made before recipes (``f"{arm}-{strength!r}-s{seed}"``), which a
+    trial that sets at most its strength keeps (with ``-h{fraction!r}`` for a
+    successive-halving rung run)."""
+    key = f"{arm}-{float(strength)!r}-s{seed}"
+    return key if budget_fraction == 1.0 else key + f"-h{float(budget_fraction)!r}"
 
 
 def _is_number(value: Any) -> bool:
@@ -234,6 +236,8 @@ class RunRecord:
     The identity of the run: ``arm`` (the arm's name), ``trial`` (index of the trial
     within the arm; ``setting_index`` of the JSON), ``settings`` (the hyperparameters the
     trial used: ``lr``, ``momentum``, ``temperature``, ``strength`` where they apply),
+    ``trial_settings`` (the trial's own point, which its run key is made of; the runner
+    records it; default: ``settings``, ``{"strength": strength}`` for a legacy record),
     ``searched`` (the keys that vary across the arm's trials), ``recipe``, ``seed`` and
     ``budget_fraction`` (1.0: a full run; f < 1: a successive-halving rung run). Its
     outcome: ``status``, ``metrics`` (``val_accuracy`` ...; a value may be None or NaN),
@@ -257,6 +261,7 @@ class RunRecord:
     epochs: int | None = None
     grad_evals: int | None = None
     strength: float = 0.0
+    trial_settings: dict[str, Any] = field(default_factory=dict)
     fingerprint: str = ""
     message: str = ""
     task: str = "classification"
@@ -341,6 +346,10 @@ class RunRecord:
         elif "settings" in data and strength != settings.get("strength", 0.0):
             raise check.fail("strength", f"'strength' = {strength!r} differs from the "
                              f"strength of its 'settings' ({settings.get('strength', 0.0)!r})")
+        trial_settings = check.optional(
+            data, "trial_settings", lambda v: isinstance(v, dict) and all(
+                isinstance(k, str) and _is_number(x) for k, x in v.items()),
+            "an object of numbers ({name: value})", dict(settings))
         index = check.optional(data, "setting_index", lambda v: _is_int(v) and v >= 0,
                                "a non-negative integer")
         trial = check.optional(data, "trial", lambda v: _is_int(v) and v >= 0,
@@ -390,7 +399,7 @@ class RunRecord:
             key=data["key"], arm=data["arm"], seed=data["seed"], status=data["status"],
             metrics=dict(data["metrics"]), trial=trial, settings=dict(settings),
             searched=tuple(searched), recipe=recipe, budget_fraction=fraction, epochs=epochs,
-            grad_evals=grad_evals, strength=strength,
+            grad_evals=grad_evals, strength=strength, trial_settings=dict(trial_settings),
             fingerprint=data.get("fingerprint", ""), message=data.get("message", ""),
             task=data.get("task") or "classification", n_classes=data.get("n_classes"),
             n_train=data.get("n_train", 0), layers=tuple(data.get("layers") or ()),
@@ -415,6 +424,7 @@ class RunRecord:
             "settings": dict(self.settings), "searched": list(self.searched),
             "recipe": self.recipe.to_dict(), "budget_fraction": self.budget_fraction,
             "epochs": self.epochs, "grad_evals": self.grad_evals, "strength": self.strength,
+            "trial_settings": dict(self.trial_settings),
             "fingerprint": self.fingerprint, "message": self.message, "task": self.task,
             "n_classes": self.n_classes, "n_train": self.n_train, "layers": list(self.layers),
             "history": dict(self.history), "hooks": dict(self.hooks),
@@ -496,8 +506,9 @@ def read_record(data: Any, path: str | Path | None = None,
     ``fingerprint``); a ``status`` in :data:`holonomic.study.storage.RUN_STATUSES`; a
     finished run (status ok) holds every metric its task records, finite (ROC AUC and R^2
     may be undefined) and in the range the metric can take; the ``key`` equals the file
-    name and the key of its fields: ``run_key(record)`` when given, else for a record of an
-    old-style arm (settings ``{"strength": x}`` only, full budget) the old key
+    name and the key of its fields: ``run_key(record)`` when given (e.g.
+    ``lambda r: storage.run_key(r.arm, r.trial_settings, r.seed, r.budget_fraction,
+    r.trial)``), else for a trial that sets at most its strength the old key
     :func:`legacy_key` (other keys are left to ``run_key``).
 
     Raises:
@@ -517,8 +528,9 @@ def read_record(data: Any, path: str | Path | None = None,
                          f"(key {Path(path).stem!r})")
     if run_key is not None:
         expected = run_key(record)
-    elif set(record.settings) == {"strength"} and record.full:
-        expected = legacy_key(record.arm, record.strength, record.seed)
+    elif set(record.trial_settings) <= {"strength"}:
+        expected = legacy_key(record.arm, record.trial_settings.get("strength", 0.0),
+                              record.seed, record.budget_fraction)
     else:
         expected = record.key
     if record.key != expected:
