@@ -178,6 +178,7 @@ def test_report_states_budget_choice_edges_halving_and_scope(written):
     scope = next(line for line in lines if line.startswith("What this shows"))
     assert lines.index(scope) < lines.index("## Set-up")
     assert "tuned comparison" in scope and "not a general claim" in scope
+    assert "tuned with 4 trials (successive halving: 2 trained in full)" in scope
     assert "with this model and these 3 seeds" in scope
     # one budget row per arm: optimiser, regulariser, trials, seeds, gradient evaluations
     rows = {line.split(" | ")[0][2:]: line for line in lines

@@ -373,8 +373,10 @@ def report_markdown(config: Any, summary: dict[str, Any], description: str,
 
 def _scope_lines(summary: dict[str, Any], n_seeds: int) -> list[str]:
     """What the verdicts do and do not show, right under them."""
-    searched = [a["budget"]["trials"] for a in summary["arms"].values()
+    searched = [a["budget"]["trials_started"] for a in summary["arms"].values()
                 if a.get("budget") and a.get("searched")]
+    full = sorted({a["budget"]["trials"] for a in summary["arms"].values()
+                   if a.get("budget") and a.get("searched")})
     fixed = [n for n, a in summary["arms"].items() if a.get("budget") and not a.get("searched")]
     counts = sorted(set(searched))
     if not counts:
@@ -385,6 +387,10 @@ def _scope_lines(summary: dict[str, Any], n_seeds: int) -> list[str]:
     else:
         tuned = (f"arms tuned with {counts[0]} to {counts[-1]} trials: NOT the same number "
                  "for every arm")
+    if counts and full != counts:
+        tuned += (f" (successive halving: {' to '.join(map(str, (full[0], full[-1])))} "
+                  "trained in full)" if len(full) > 1 else
+                  f" (successive halving: {full[0]} trained in full)")
     if fixed and counts:
         tuned += f"; {', '.join(fixed)}: nothing searched, one setting"
     return [f"What this shows: a tuned comparison ({tuned}; choices made on the validation "
@@ -443,7 +449,10 @@ def _budget_lines(summary: dict[str, Any]) -> list[str]:
         lines += [f"- {name}: {e['key']} = {e['value']:g}, the {e['side']} of the values "
                   f"tried ({e['low']:g} to {e['high']:g})." for name, e in edges]
         lines += ["", "The best value may lie outside the range searched: widen the range of "
-                  "these settings (or say why not) before drawing conclusions.", ""]
+                  "these settings (or say why not) before drawing conclusions. With a few "
+                  "trials per arm some trial always holds the smallest and the largest value "
+                  "of each setting, so a flag says where a wider search could help, not that "
+                  "it would.", ""]
     return lines
 
 
