@@ -57,12 +57,22 @@ def _records(**kwargs):
     return fabricate_trials(ARMS, seeds=SEEDS, **kwargs)
 
 
-def _study(baseline: str = "sgd_wd"):
+def _arm(name: str, spec: dict | None = None) -> ArmConfig:
+    """An arm of the study file with this name (and recipe, where the config has one)."""
+    spec = spec or {}
+    fields = {f.name for f in dataclasses.fields(ArmConfig)}
+    given = {"grid": (0.0,), "regulariser": spec.get("regulariser", name),
+             "optimiser": spec.get("optimiser", "langevin")}
+    return ArmConfig(name=name, **{k: v for k, v in given.items() if k in fields})
+
+
+def _study(baseline: str = "sgd_wd", arms: dict | None = None):
     """The tiny study with the recipe arms (only names, seeds, baseline and the shared
     budget are read from it by the report)."""
     config = parse_config(tiny_document())
+    arms = ARMS if arms is None else arms
     return dataclasses.replace(config, seeds=SEEDS, baseline=baseline,
-                               arms=tuple(ArmConfig(name, (0.0,)) for name in ARMS))
+                               arms=tuple(_arm(name, spec) for name, spec in arms.items()))
 
 
 def _mean(records, arm, trial, metric="val_accuracy"):
@@ -311,7 +321,7 @@ def test_temperature_scan_uses_a_log_axis_when_every_temperature_is_positive(tmp
     arms = {"hot": {"regulariser": "none", "trials": [
         {"lr": 0.05, "temperature": t} for t in (1e-4, 1e-3, 1e-2)]}}
     records = fabricate_trials(arms, seeds=SEEDS)
-    config = dataclasses.replace(_study("hot"), arms=(ArmConfig("hot", (0.0,)),))
+    config = _study("hot", arms)
     figures = build_figures(config, records, select_settings(config, records))
     try:
         scan = dict((n, f) for n, _, f in figures)["selection_vs_temperature.png"]
@@ -321,9 +331,10 @@ def test_temperature_scan_uses_a_log_axis_when_every_temperature_is_positive(tmp
         for _, _, fig in figures:
             plt.close(fig)
     # no arm varies temperature: no scan figure
-    flat = fabricate_trials({"cold": {"regulariser": "none", "trials": [
-        {"lr": lr, "temperature": 0.0} for lr in (0.01, 0.1)]}}, seeds=SEEDS)
-    config = dataclasses.replace(_study("cold"), arms=(ArmConfig("cold", (0.0,)),))
+    cold = {"cold": {"regulariser": "none", "trials": [
+        {"lr": lr, "temperature": 0.0} for lr in (0.01, 0.1)]}}
+    flat = fabricate_trials(cold, seeds=SEEDS)
+    config = _study("cold", cold)
     names = [n for n, _, f in build_figures(config, flat, select_settings(config, flat))]
     plt.close("all")
     assert "selection_vs_temperature.png" not in names

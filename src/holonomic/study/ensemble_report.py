@@ -96,6 +96,7 @@ def ensemble_summary(chosen: Mapping[str, Any]) -> dict[str, Any]:
             "strength": sel.strength,
             "trial": sel.index,
             "chosen_settings": dict(sel.settings),
+            "searched": list(sel.searched),
             "settings": runs[0]["settings"],
             "sampler": runs[0]["sampler"],
             "seeds_ok": [seed for seed, _ in ok],
@@ -174,8 +175,8 @@ def ensemble_lines(summary: dict[str, Any]) -> list[str]:
              "predictive spread describe the predictions and are neither."]
     for name, entry in summary.items():
         s = entry["settings"]
-        chosen = entry.get("chosen_settings") or {}
-        which = (f"strength {entry['strength']:g}" if set(chosen) <= {"strength"}
+        which = (f"strength {entry['strength']:g}"
+                 if set(entry.get("searched", ())) <= {"strength"}
                  else f"trial {entry['trial']}")
         lines += ["", f"### {name} ({which})", "",
                   f"- Sampler `{entry['sampler']}`, T = {s['temperature']:g}, {s['samples']} "

@@ -201,9 +201,9 @@ def temperature_arms(trials, chosen) -> list[tuple[str, list[TrialRuns], Any]]:
 
 
 def _label(sel) -> str:
-    """Legend label of an arm's chosen trial: its strength (an arm that searches only the
-    strength, as before recipes), else the trial's index."""
-    if set(sel.settings) <= {"strength"}:
+    """Legend label of an arm's chosen trial: its strength (an arm that searches at most
+    the strength, as before recipes), else the trial's index."""
+    if set(sel.searched) <= {"strength"}:
         return f"{sel.arm} ({sel.strength:g})"
     return f"{sel.arm} (trial {sel.index})"
 
