@@ -21,7 +21,8 @@ from holonomic.study.records import as_records
 from holonomic.study.selection import TrialRuns, group_trials
 from holonomic.study.storage import atomic_write_bytes_from
 
-__all__ = ["ARM_COLOURS", "arm_colour", "arm_colours", "build_figures", "write_plots"]
+__all__ = ["ARM_COLOURS", "arm_colour", "arm_colours", "build_figures", "temperature_arms",
+           "write_plots"]
 
 #: One colour per arm, the same in every figure (matplotlib's tab10 colours; grey for the
 #: unregularised arm).
