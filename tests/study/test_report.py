@@ -19,6 +19,8 @@ def _records(config, rng):
     for spec in plan_runs(config):
         metrics = {name: float(rng.uniform(0.2, 0.9)) for name in _METRIC_NAMES}
         records[spec.key] = {"key": spec.key, "arm": spec.arm, "status": "ok",
+                             "seed": spec.seed, "strength": spec.strength,
+                             "setting_index": spec.index,
                              "n_train": 64, "grad_evals": 10, "layers": [],
                              "metrics": metrics}
     return records

@@ -140,7 +140,7 @@ def test_no_seeds_needed_without_min_effect(tmp_path):
 
 
 def test_no_too_small_note_when_the_interval_excludes_zero():
-    from holonomic.study.report import _add_power
+    from holonomic.study.summary import _add_power
 
     # invented comparison: observed 0.01 below the detectable 0.02, but the interval
     # [0.002, 0.018] excludes 0, so the study did detect it: no "too small" note

@@ -179,11 +179,11 @@ def _edit(record: dict, change: str):
 
 CHANGES = {
     "not json": "it is not JSON", "list": "JSON list, not an object",
-    "no metrics": "lacks the key(s) metrics", "unknown status": "'status' must be one of ok",
+    "no metrics": "lacks the key 'metrics'", "unknown status": "'status' must be one of ok",
     "other key": "does not match its file name", "seed text": "'seed' must be an integer",
     "strength bool": "'strength' must be a number", "metric text": "'test_accuracy' must be",
     "fingerprint number": "'fingerprint' must be a string",
-    "arm and key swapped": "does not match its arm, strength and seed",
+    "arm and key swapped": "does not match its arm, settings and seed",
 }
 
 

@@ -73,9 +73,13 @@ def test_holm_adjust_worked_example():
     # running maximum:                       0.02,  0.03, 0.06, 0.06
     # back in the original order:            0.03,  0.06, 0.06, 0.02
     # (statsmodels' multipletests(method="holm") is not installed here; the hand
-    # computation is the reference.)
+    # computation is the reference.) The same four p-values are, as recalled, the worked
+    # example of the Wikipedia article "Holm-Bonferroni method": at alpha = 0.05 Holm
+    # rejects H1 (0.01) and H4 (0.005) and keeps H2 (0.04) and H3 (0.03), where plain
+    # Bonferroni (0.05 / 4 = 0.0125) would also reject H1 and H4 only.
     adjusted = holm_adjust([0.01, 0.04, 0.03, 0.005])
     np.testing.assert_allclose(adjusted, [0.03, 0.06, 0.06, 0.02], rtol=1e-12)
+    assert list(adjusted <= 0.05) == [True, False, False, True]
     # capped at 1: 0.6 * 2 = 1.2 -> 1; the running max keeps the second at 1
     np.testing.assert_allclose(holm_adjust([0.6, 0.7]), [1.0, 1.0])
     # a single hypothesis is not adjusted; a missing p stays missing and is not counted

@@ -226,6 +226,7 @@ def test_selection_follows_the_metric_direction(tiny_doc, selection, best):
     task = Task("classification", 4)
     rng = np.random.default_rng(3)
     records = {s.key: {"key": s.key, "arm": s.arm, "status": "ok", "task": "classification",
+                       "seed": s.seed, "strength": s.strength, "setting_index": s.index,
                        "n_classes": 4, "metrics": {n: float(rng.uniform(0.1, 0.9))
                                                    for n in record_metric_names(task)}}
                for s in plan_runs(config)}

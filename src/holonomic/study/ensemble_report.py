@@ -10,12 +10,11 @@ comes from :data:`METRIC_DIRECTIONS`.
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import Any, Mapping
 
 import numpy as np
 
 from holonomic.sampling import mixing_diagnostics, rank_normalized_split_rhat
-from holonomic.study.config import StudyConfig
 from holonomic.study.stats import comparison_note, paired_comparison
 
 __all__ = ["METRIC_DIRECTIONS", "ensemble_lines", "ensemble_metric_names", "ensemble_summary"]
@@ -30,11 +29,18 @@ METRIC_DIRECTIONS: dict[str, bool | None] = {
 }
 
 
-def _phases(records: dict[str, dict]) -> list[dict]:
-    return [r["ensemble"] for r in records.values() if r.get("ensemble")]
+def _phase(record: Any) -> dict | None:
+    """A record's ensemble phase as a dict (``record``: a dict or a RunRecord)."""
+    if isinstance(record, dict):
+        return record.get("ensemble") or None
+    return None if record.ensemble is None else record.ensemble.to_dict()
 
 
-def ensemble_metric_names(records: dict[str, dict]) -> tuple[str, ...]:
+def _phases(records: Mapping[str, Any]) -> list[dict]:
+    return [p for p in map(_phase, records.values()) if p]
+
+
+def ensemble_metric_names(records: Mapping[str, Any]) -> tuple[str, ...]:
     """Metric names of the ensemble phases in ``records`` (the keys of
     ``record["ensemble"]["single"]["test"]``) in the order of :data:`METRIC_DIRECTIONS`,
     then any other name sorted."""
@@ -45,8 +51,6 @@ def ensemble_metric_names(records: dict[str, dict]) -> tuple[str, ...]:
     return tuple(_in_order(seen))
 
 
-def _task_of(records: dict[str, dict]) -> str:
-    return next((r.get("task", "classification") for r in records.values()), "classification")
 
 def _diagnostics(traces: dict[str, np.ndarray]) -> dict[str, Any]:
     """Mixing diagnostics per observable, seeds as chains, plus single-chain split R-hat."""
@@ -72,30 +76,31 @@ def _diagnostics(traces: dict[str, np.ndarray]) -> dict[str, Any]:
     return out
 
 
-def ensemble_summary(config: StudyConfig, records: dict[str, dict],
-                     chosen: dict[str, Any]) -> dict[str, Any]:
-    """Per arm with an ensemble, at its chosen setting: single vs ensemble on the test split
-    (paired by seed: mean difference ensemble - single with a 95% t interval) and the mixing
-    diagnostics of the traced observables over the seeds' chains."""
-    from holonomic.study.runner import RunSpec
+def ensemble_summary(chosen: Mapping[str, Any]) -> dict[str, Any]:
+    """Per arm with an ensemble phase, at its chosen trial: single vs ensemble on the test
+    split (paired by seed: mean difference ensemble - single with a 95% t interval) and the
+    mixing diagnostics of the traced observables over the seeds' chains.
 
-    task = _task_of(records)
+    ``chosen``: arm -> :class:`holonomic.study.selection.Selection` (its ``runs``, typed
+    run records, are read; arms without a choice or without a phase are left out).
+    """
     out: dict[str, Any] = {}
-    for arm in config.arms:
-        sel = chosen[arm.name]
-        if arm.ensemble is None or sel.index is None:
+    for arm, sel in chosen.items():
+        if sel.index is None or not sel.runs or sel.runs[0].ensemble is None:
             continue
-        settings = arm.trials[sel.index].settings
-        runs = [records[RunSpec(arm.name, sel.index, settings, s).key]["ensemble"]
-                for s in config.seeds]
-        ok = [(seed, r) for seed, r in zip(config.seeds, runs) if r["status"] == "ok"]
+        seeds = [r.seed for r in sel.runs]
+        runs = [_phase(r) for r in sel.runs]
+        ok = [(seed, r) for seed, r in zip(seeds, runs) if r["status"] == "ok"]
         entry: dict[str, Any] = {
-            "task": task,
+            "task": sel.runs[0].task,
             "strength": sel.strength,
+            "trial": sel.index,
+            "chosen_settings": dict(sel.settings),
+            "searched": list(sel.searched),
             "settings": runs[0]["settings"],
             "sampler": runs[0]["sampler"],
             "seeds_ok": [seed for seed, _ in ok],
-            "seeds_failed": {str(seed): r["message"] for seed, r in zip(config.seeds, runs)
+            "seeds_failed": {str(seed): r["message"] for seed, r in zip(seeds, runs)
                              if r["status"] != "ok"},
             "metrics": {},
             "mixing": {},
@@ -116,7 +121,7 @@ def ensemble_summary(config: StudyConfig, records: dict[str, dict],
                              for _, r in ok)]
             traces = {name: np.array([r["traces"][name] for _, r in ok]) for name in traced}
             entry["mixing"] = _diagnostics(traces)
-        out[arm.name] = entry
+        out[arm] = entry
     return out
 
 
@@ -170,7 +175,10 @@ def ensemble_lines(summary: dict[str, Any]) -> list[str]:
              "predictive spread describe the predictions and are neither."]
     for name, entry in summary.items():
         s = entry["settings"]
-        lines += ["", f"### {name} (strength {entry['strength']:g})", "",
+        which = (f"strength {entry['strength']:g}"
+                 if set(entry.get("searched", ())) <= {"strength"}
+                 else f"trial {entry['trial']}")
+        lines += ["", f"### {name} ({which})", "",
                   f"- Sampler `{entry['sampler']}`, T = {s['temperature']:g}, {s['samples']} "
                   f"samples every {s['every']} steps after a burn-in of {s['burn_in']} steps; "
                   f"step {s['step']:.4g}, friction {s['friction']:.4g} (units of the force "

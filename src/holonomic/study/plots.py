@@ -1,8 +1,12 @@
-"""Study plots (PNG): selection metric and gap against strength, learning curves, weights.
+"""Study plots (PNG): selection metric and gap against strength, the selection metric
+against temperature, learning curves, weights.
 
-Every figure draws each arm in the same colour (:data:`ARM_COLOURS`), epochs on integer
-ticks, spreads as the standard error over seeds, and nothing at a zero on a log axis (a
-zero residual is left out, not drawn at an invented floor).
+The figures read run records and each arm's :class:`~holonomic.study.selection.Selection`
+(plain data: an arm's trials are found from the records, grouped by ``(arm, trial)``; only
+full-budget runs are drawn). Every figure draws each arm in the same colour
+(:func:`arm_colours`), epochs on integer ticks, spreads as the standard error over seeds,
+and nothing at a zero on a log axis (a zero residual is left out, not drawn at an invented
+floor).
 """
 
 from __future__ import annotations
@@ -13,11 +17,12 @@ from typing import Any
 
 import numpy as np
 
-from holonomic.study.config import StudyConfig
-from holonomic.study.runner import RunSpec
+from holonomic.study.records import as_records
+from holonomic.study.selection import TrialRuns, group_trials
 from holonomic.study.storage import atomic_write_bytes_from
 
-__all__ = ["ARM_COLOURS", "arm_colour", "build_figures", "write_plots"]
+__all__ = ["ARM_COLOURS", "arm_colour", "arm_colours", "build_figures", "temperature_arms",
+           "write_plots"]
 
 #: One colour per arm, the same in every figure (matplotlib's tab10 colours; grey for the
 #: unregularised arm).
@@ -38,6 +43,16 @@ def arm_colour(name: str) -> str:
     return _SPARE_COLOURS[sum(map(ord, name)) % len(_SPARE_COLOURS)]
 
 
+def arm_colours(arms) -> dict[str, str]:
+    """One colour per arm of ``arms``: :data:`ARM_COLOURS` for the arms named after a
+    regulariser, spare colours in order for the others (distinct while they last)."""
+    out = {a: ARM_COLOURS[a] for a in arms if a in ARM_COLOURS}
+    spare = [c for c in _SPARE_COLOURS if c not in out.values()]
+    for i, arm in enumerate(a for a in arms if a not in ARM_COLOURS):
+        out[arm] = spare[i] if i < len(spare) else arm_colour(arm)
+    return out
+
+
 def _pyplot():
     import matplotlib
 
@@ -51,11 +66,10 @@ def _save(fig, path: Path) -> None:
     atomic_write_bytes_from(path, lambda tmp: fig.savefig(tmp, dpi=110, format="png"))
 
 
-def _histories(config: StudyConfig, records: dict, arm: str, index: int, name: str):
-    settings = config.arm(arm).trials[index].settings
-    rows = [records[RunSpec(arm, index, settings, seed).key]["history"].get(name)
-            for seed in config.seeds]
-    if any(r is None for r in rows):
+def _histories(runs, name: str):
+    """History ``name`` of ``runs`` (seeds x epochs, cut to the shortest), or None."""
+    rows = [r.history.get(name) for r in runs]
+    if not rows or any(r is None for r in rows):
         return None
     length = min(len(r) for r in rows)
     if length == 0:
@@ -79,44 +93,65 @@ def _integer_epochs(ax, epochs: int) -> None:
     ax.xaxis.set_major_locator(MaxNLocator(integer=True, min_n_ticks=1))
 
 
-def _per_setting(config: StudyConfig, records: dict, arm, metric: str):
+def _per_trial(trials: list[TrialRuns], metric: str) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and standard error over seeds of ``metric``, per trial."""
     means, errs = [], []
-    for i in range(len(arm.grid)):
-        vals = np.array([records[RunSpec(arm.name, i, arm.trials[i].settings, s).key]["metrics"]
-                         .get(metric, math.nan) for s in config.seeds], dtype=np.float64)
-        mean, se = _mean_se(vals)
+    for trial in trials:
+        mean, se = _mean_se(trial.values(metric))
         means.append(float(mean))
         errs.append(float(se))
     return np.array(means), np.array(errs)
 
 
-def _against_strength(plt, config: StudyConfig, records: dict, chosen: dict, metric: str,
-                      ylabel: str, title: str):
-    """One panel per tuned arm: ``metric`` mean ± se over seeds against strength, the
-    chosen point ringed; the unregularised arm's mean as a dashed line."""
-    tuned = [a for a in config.arms if a.name != "none"]
-    fig, axes = plt.subplots(1, max(1, len(tuned)), figsize=(3.6 * max(1, len(tuned)), 3.2),
+def _chosen_trial(trials: list[TrialRuns], sel) -> int | None:
+    """Position of the chosen trial in ``trials`` (None: no choice)."""
+    return next((i for i, t in enumerate(trials) if sel is not None and t.trial == sel.index),
+                None)
+
+
+def _scan_axis(ax, xs) -> None:
+    """Log x axis when every value is > 0, symlog when 0 is among them (linear up to the
+    smallest positive value); linear with one value only."""
+    xs = np.asarray(xs, dtype=np.float64)
+    positive = xs[xs > 0]
+    if len(set(xs.tolist())) < 2:
+        return
+    if len(positive) == len(xs):
+        ax.set_xscale("log")
+    elif len(positive) and (xs >= 0).all():  # 0 and positive values
+        ax.set_xscale("symlog", linthresh=float(positive.min()))
+
+
+def _against(plt, panels, key: str, metric: str, ylabel: str, title: str, colours,
+             reference=None, force_log: bool = False):
+    """One panel per ``(arm, trials, selection)``: ``metric`` mean ± se over seeds against
+    setting ``key`` per trial (a line when only ``key`` varies, else points), the chosen
+    trial ringed; ``reference``: a dashed line ``(label, value)``."""
+    fig, axes = plt.subplots(1, max(1, len(panels)), figsize=(3.6 * max(1, len(panels)), 3.2),
                              squeeze=False)
-    reference = None
-    if any(a.name == "none" for a in config.arms):
-        reference = _per_setting(config, records, config.arm("none"), metric)[0][0]
-    for ax, arm in zip(axes[0], tuned):
-        colour = arm_colour(arm.name)
-        means, errs = _per_setting(config, records, arm, metric)
-        ax.errorbar(arm.grid, means, yerr=errs, marker="o", capsize=3, color=colour,
-                    label=arm.name)
-        sel = chosen[arm.name]
-        if sel.index is not None:
-            ax.plot([sel.strength], [means[sel.index]], marker="o", markersize=13,
+    for ax, (arm, trials, sel) in zip(axes[0], panels):
+        colour = colours[arm]
+        order = sorted(range(len(trials)), key=lambda i: float(trials[i].settings[key]))
+        xs = np.array([float(trials[i].settings[key]) for i in order])
+        means, errs = _per_trial([trials[i] for i in order], metric)
+        others = {k for t in trials for k, v in t.settings.items()
+                  if k != key and v != trials[0].settings.get(k)}
+        ax.errorbar(xs, means, yerr=errs, marker="o", capsize=3, color=colour, label=arm,
+                    linestyle="-" if not others else "none")
+        pick = _chosen_trial([trials[i] for i in order], sel)
+        if pick is not None:
+            ax.plot([xs[pick]], [means[pick]], marker="o", markersize=13,
                     markerfacecolor="none", markeredgecolor=colour, markeredgewidth=1.5,
-                    linestyle="none", label=f"chosen ({sel.strength:g})")
-        if reference is not None and math.isfinite(reference):
-            ax.axhline(reference, color=arm_colour("none"), linestyle="--", linewidth=1,
-                       label="none")
-        if min(arm.grid) > 0 and max(arm.grid) / min(arm.grid) > 20:
+                    linestyle="none", label=f"chosen ({xs[pick]:g})")
+        if reference is not None and math.isfinite(reference[1]):
+            ax.axhline(reference[1], color=colours.get(reference[0], arm_colour(reference[0])),
+                       linestyle="--", linewidth=1, label=reference[0])
+        if force_log:
+            _scan_axis(ax, xs)
+        elif xs.min() > 0 and xs.max() / xs.min() > 20:
             ax.set_xscale("log")
-        ax.set_title(arm.name, fontsize=9)
-        ax.set_xlabel("strength")
+        ax.set_title(arm, fontsize=9)
+        ax.set_xlabel(key)
         ax.set_ylabel(ylabel, fontsize=8)
         ax.legend(fontsize=7)
     fig.suptitle(title, fontsize=10)
@@ -124,25 +159,80 @@ def _against_strength(plt, config: StudyConfig, records: dict, chosen: dict, met
     return fig
 
 
-def _learning_curves(plt, config: StudyConfig, records: dict, chosen: dict, headline: str):
+def _strength_panels(trials, chosen):
+    """Arms drawn against strength: every arm whose recipe has a regulariser other than
+    ``none`` and whose trials record a strength; and the unregularised arm (one trial, or
+    its chosen trial) as the reference ``(name, mean)`` of ``metric``."""
+    panels, reference = [], None
+    for arm, sel in chosen.items():
+        mine = list(trials.get(arm, {}).values())
+        if not mine:
+            continue
+        if sel.recipe is not None and sel.recipe.regulariser == "none":
+            if reference is None:
+                pick = _chosen_trial(mine, sel)
+                reference = (arm, mine[0] if len(mine) == 1 else
+                             None if pick is None else mine[pick])
+            continue
+        if all("strength" in t.settings for t in mine):
+            panels.append((arm, mine, sel))
+    return panels, reference
+
+
+def _against_strength(plt, trials, chosen, metric: str, ylabel: str, title: str, colours):
+    """One panel per tuned arm: ``metric`` mean ± se over seeds against strength, the
+    chosen point ringed; the unregularised arm's mean as a dashed line."""
+    panels, reference = _strength_panels(trials, chosen)
+    line = None
+    if reference is not None and reference[1] is not None:
+        line = (reference[0], float(_mean_se(reference[1].values(metric))[0]))
+    return _against(plt, panels, "strength", metric, ylabel, title, colours, line)
+
+
+def temperature_arms(trials, chosen) -> list[tuple[str, list[TrialRuns], Any]]:
+    """``(arm, full trials, selection)`` of every arm whose trials vary temperature."""
+    out = []
+    for arm, sel in chosen.items():
+        mine = list(trials.get(arm, {}).values())
+        values = {float(t.settings["temperature"]) for t in mine
+                  if "temperature" in t.settings}
+        if len(values) > 1 and all("temperature" in t.settings for t in mine):
+            out.append((arm, mine, sel))
+    return out
+
+
+def _label(sel) -> str:
+    """Legend label of an arm's chosen trial: its strength (an arm that searches at most
+    the strength, as before recipes), else the trial's index."""
+    if set(sel.searched) <= {"strength"}:
+        return f"{sel.arm} ({sel.strength:g})"
+    return f"{sel.arm} (trial {sel.index})"
+
+
+def _epochs(chosen) -> int:
+    """Epochs drawn: the longest history of the chosen runs (at least 1)."""
+    return max([len(r.history.get("epoch") or next(iter(r.history.values()), []))
+                for sel in chosen.values() for r in sel.runs] + [1])
+
+
+def _learning_curves(plt, chosen: dict, headline: str, colours):
     fig, axes = plt.subplots(1, 2, figsize=(10, 3.6), sharey=True)
-    for arm in config.arms:
-        sel = chosen[arm.name]
+    for arm, sel in chosen.items():
         if sel.index is None:
             continue
         for ax, part in zip(axes, ("train", "test")):
-            values = _histories(config, records, arm.name, sel.index, f"{part}_{headline}")
+            values = _histories(sel.runs, f"{part}_{headline}")
             if values is None:
                 continue
             epochs = np.arange(1, values.shape[1] + 1)
             mean, se = _mean_se(values)
-            colour = arm_colour(arm.name)
-            ax.plot(epochs, mean, color=colour, label=f"{arm.name} ({sel.strength:g})")
+            colour = colours[arm]
+            ax.plot(epochs, mean, color=colour, label=_label(sel))
             ax.fill_between(epochs, mean - se, mean + se, color=colour, alpha=0.2,
-                            linewidth=0, gid=arm.name)
+                            linewidth=0, gid=arm)
     for ax, part in zip(axes, ("train", "test")):
         ax.set_xlabel("epoch")
-        _integer_epochs(ax, config.budget.epochs)
+        _integer_epochs(ax, _epochs(chosen))
         ax.set_title(f"{part} {headline} (chosen settings, mean ± se over seeds)", fontsize=9)
     axes[0].set_ylabel(headline)
     axes[1].legend(fontsize=7)
@@ -150,28 +240,27 @@ def _learning_curves(plt, config: StudyConfig, records: dict, chosen: dict, head
     return fig
 
 
-def _weights(plt, config: StudyConfig, records: dict, chosen: dict):
+def _weights(plt, chosen: dict, colours):
     fig, axes = plt.subplots(1, 2, figsize=(10, 3.6))
     all_zero = []
-    for arm in config.arms:
-        sel = chosen[arm.name]
+    for arm, sel in chosen.items():
         if sel.index is None:
             continue
-        label = f"{arm.name} ({sel.strength:g})"
-        colour = arm_colour(arm.name)
-        norms = _histories(config, records, arm.name, sel.index, "mean_row_norm_hidden")
+        label = _label(sel)
+        colour = colours[arm]
+        norms = _histories(sel.runs, "mean_row_norm_hidden")
         if norms is not None:
             epochs = np.arange(1, norms.shape[1] + 1)
             mean, se = _mean_se(norms)
             axes[0].plot(epochs, mean, color=colour, label=label)
             axes[0].fill_between(epochs, mean - se, mean + se, color=colour, alpha=0.2,
-                                 linewidth=0, gid=arm.name)
-        residual = _histories(config, records, arm.name, sel.index, "constraint_residual")
+                                 linewidth=0, gid=arm)
+        residual = _histories(sel.runs, "constraint_residual")
         if residual is None or not np.isfinite(residual).all():
             continue  # the arm holds no constraint (NaN residual)
         worst = residual.max(axis=0)
         if not (worst > 0).any():
-            all_zero.append(arm.name)
+            all_zero.append(arm)
             continue
         shown = np.where(worst > 0, worst, np.nan)  # a zero has no place on a log axis
         axes[1].semilogy(np.arange(1, len(worst) + 1), shown, color=colour, marker=".",
@@ -184,57 +273,73 @@ def _weights(plt, config: StudyConfig, records: dict, chosen: dict):
                      transform=axes[1].transAxes, fontsize=7)
     for ax in axes:
         ax.set_xlabel("epoch")
-        _integer_epochs(ax, config.budget.epochs)
+        _integer_epochs(ax, _epochs(chosen))
         if ax.get_legend_handles_labels()[0]:
             ax.legend(fontsize=7)
     fig.tight_layout()
     return fig
 
 
-def build_figures(config: StudyConfig, records: dict, chosen: dict,
+def build_figures(config: Any, records: dict, chosen: dict,
                   metrics: Any = None) -> list[tuple[str, str, Any]]:
     """The study's figures as ``(file name, description, matplotlib Figure)``.
 
-    ``metrics``: :class:`holonomic.study.report.StudyMetrics` (read from the records when
-    None). The caller closes the figures.
+    ``records``: ``{key: dict or RunRecord}``; ``chosen``: arm -> Selection (report order);
+    ``metrics``: :class:`holonomic.study.selection.StudyMetrics` (read from the records
+    with ``config``'s selection metric when None; ``config`` is used for nothing else).
+    The caller closes the figures.
     """
     if metrics is None:
         from holonomic.study.report import study_metrics
 
         metrics = study_metrics(config, records)
+    typed = as_records(records)
+    trials = group_trials(typed)
+    colours = arm_colours(list(chosen) + [a for a in trials if a not in chosen])
     plt = _pyplot()
     headline, selection = metrics.headline, metrics.selection
     larger = metrics.higher_is_better(metrics.selection_base)
+    better = f"{'larger' if larger else 'smaller'} is better"
     gap = f"val_gap_{headline}"
     out = [
         ("selection_vs_strength.png",
-         f"mean validation metric used for the choice ({selection}, "
-         f"{'larger' if larger else 'smaller'} is better) against strength per arm, ± "
-         "standard error over seeds, chosen point ringed, the unregularised arm dashed",
-         _against_strength(plt, config, records, chosen, selection,
-                           f"{selection} (mean ± se)",
-                           f"Selection metric ({selection}) against strength")),
+         f"mean validation metric used for the choice ({selection}, {better}) against "
+         "strength per arm, ± standard error over seeds, chosen point ringed, the "
+         "unregularised arm dashed",
+         _against_strength(plt, trials, chosen, selection, f"{selection} (mean ± se)",
+                           f"Selection metric ({selection}) against strength", colours)),
     ]
     if gap in metrics.names:
         out.append(("gap_vs_strength.png",
                     f"validation gap in {headline} (how much better the training split "
                     "scores) against strength per arm, mean ± standard error over seeds",
-                    _against_strength(plt, config, records, chosen, gap,
+                    _against_strength(plt, trials, chosen, gap,
                                       f"gap in {headline}, train vs val (mean ± se)",
                                       "Generalisation gap on the validation split against "
-                                      "strength")))
+                                      "strength", colours)))
+    scan = temperature_arms(trials, chosen)
+    if scan:
+        out.append(("selection_vs_temperature.png",
+                    f"temperature scan: mean validation metric used for the choice "
+                    f"({selection}, {better}) against temperature per arm whose trials vary "
+                    "it, ± standard error over seeds, chosen trial ringed (points, not a "
+                    "line, when other settings vary too; a trend there mixes the effects "
+                    "of every setting that varies)",
+                    _against(plt, scan, "temperature", selection, f"{selection} (mean ± se)",
+                             f"Selection metric ({selection}) against temperature", colours,
+                             force_log=True)))
     out.append(("learning_curves.png",
                 f"train and test {headline} per epoch of the chosen settings, mean ± "
                 "standard error over seeds (shown after selection; not used for it)",
-                _learning_curves(plt, config, records, chosen, headline)))
+                _learning_curves(plt, chosen, headline, colours)))
     out.append(("weights.png",
                 "mean row norm of the hidden weights and constraint residual per epoch "
                 "of the chosen settings (zero residuals are not drawn on the log axis)",
-                _weights(plt, config, records, chosen)))
+                _weights(plt, chosen, colours)))
     return out
 
 
-def write_plots(config: StudyConfig, records: dict, chosen: dict, out_dir: Path,
+def write_plots(config: Any, records: dict, chosen: dict, out_dir: Path,
                 metrics: Any = None) -> list[str]:
     """Write the PNG plots into ``out_dir``; return ``"file: description"`` per plot."""
     plt = _pyplot()

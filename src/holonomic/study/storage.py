@@ -314,118 +314,23 @@ class InvalidRunRecord(StudyConfigError):
         return (type(self), (self.path, self.problem, self.key))
 
 
-def _is_number(value: Any) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)
-
-
-#: Task metrics (without split prefix) of a classification record made before tasks
-#: existed (no ``task`` key).
-_OLD_CLASSIFICATION = ("accuracy", "loss")
-
-
-def _required_metrics(record: dict[str, Any], bad) -> tuple[str, ...]:
-    """The task metric names a finished run of the record's task must hold."""
-    from holonomic.study.tasks import PARTS, Task, recorded_n_classes  # lazy: tasks imports torch
-
-    name = record.get("task")
-    if name is None:  # made before tasks existed: classification, accuracy and loss
-        names = [f"{p}_{m}" for p in PARTS for m in _OLD_CLASSIFICATION]
-        names += [f"{g}_{m}" for g in ("gap", "val_gap") for m in _OLD_CLASSIFICATION]
-        return tuple(names) + ("ece_val", "ece_test")
-    n_classes = recorded_n_classes(name, record.get("n_classes"), record["metrics"])
-    if isinstance(n_classes, bool) or not isinstance(n_classes, int):
-        raise bad(f"'n_classes' must be an integer, got {n_classes!r:.60}")
-    try:
-        return Task(str(name), n_classes).record_metrics()
-    except ValueError as exc:
-        raise bad(f"its task is not valid ({exc})") from None
-
-
-def _check_ok_metrics(record: dict[str, Any], bad) -> None:
-    """A finished run (status ok) holds every metric of its task, each a finite number
-    (ROC AUC and R^2 may be NaN: undefined on a split with one class or constant targets)
-    inside the range the metric can take."""
-    from holonomic.study.tasks import MAY_BE_UNDEFINED, metric_range, split_metric_name
-
-    metrics = record["metrics"]
-    missing = [n for n in _required_metrics(record, bad) if n not in metrics]
-    if missing:
-        raise bad(f"its status is ok but it lacks the metric(s) {', '.join(missing)} of its "
-                  f"task ({record.get('task', 'classification')})")
-    for name, value in metrics.items():
-        if value is None:
-            continue
-        prefix, base = split_metric_name(name)
-        if not math.isfinite(value):
-            if base in MAY_BE_UNDEFINED and math.isnan(value):
-                continue
-            if prefix:  # a task metric (norms and residuals are NaN where they do not apply)
-                raise bad(f"its status is ok but metric {name!r} is {value!r}, not a finite "
-                          "number")
-            continue
-        low, high = metric_range(name)
-        slack = 1e-9 * (1.0 + abs(value))  # roundoff
-        if not low - slack <= value <= high + slack:
-            raise bad(f"metric {name!r} = {value!r} is outside the values it can take "
-                      f"([{low:g}, {high:g}])")
-
-
 def validate_record(record: Any, path: str | Path) -> dict[str, Any]:
-    """Check that ``record`` (read from ``path``, ``DIR/runs/<key>.json``) is a run record:
-    a JSON object with the keys of :data:`REQUIRED_RECORD_KEYS` of the right types, a
-    ``status`` in :data:`RUN_STATUSES`, a ``key`` equal to the file name and to the key of
-    its arm, strength and seed. A finished run (status ok) must hold every metric its task
-    records, finite (ROC AUC and R^2 may be undefined) and in the range the metric can take
-    (:func:`holonomic.study.tasks.metric_range`). Returns the record.
+    """Check that ``record`` (read from ``path``, ``DIR/runs/<key>.json``) is a run record
+    (:func:`holonomic.study.records.read_record`: the keys every record has, of the right
+    types; a ``status`` in :data:`RUN_STATUSES`; for a finished run every metric its task
+    records, finite and in range; a ``key`` equal to the file name and to
+    :func:`run_key` of its arm, trial settings, seed, budget fraction and trial).
+    Returns the record (the dict).
 
     Raises:
         InvalidRunRecord: naming the file and the first thing wrong.
     """
-    def bad(problem: str) -> InvalidRunRecord:
-        return InvalidRunRecord(path, problem)
+    from holonomic.study.records import read_record as read_typed
 
     if not isinstance(record, dict):
-        raise bad(f"it holds a JSON {type(record).__name__}, not an object")
-    missing = [k for k in REQUIRED_RECORD_KEYS if k not in record]
-    if missing:
-        raise bad(f"it lacks the key(s) {', '.join(missing)}")
-    types = {"key": (str, "a string"), "arm": (str, "a string"),
-             "fingerprint": (str, "a string"), "metrics": (dict, "an object")}
-    for name, (kind, words) in types.items():
-        if not isinstance(record[name], kind):
-            raise bad(f"'{name}' must be {words}, got {record[name]!r:.60}")
-    if not _is_number(record["strength"]):
-        raise bad(f"'strength' must be a number, got {record['strength']!r:.60}")
-    if isinstance(record["seed"], bool) or not isinstance(record["seed"], int):
-        raise bad(f"'seed' must be an integer, got {record['seed']!r:.60}")
-    if record["status"] not in RUN_STATUSES:
-        raise bad(f"'status' must be one of {', '.join(RUN_STATUSES)}, got "
-                  f"{record['status']!r:.60}")
-    for name, value in record["metrics"].items():
-        if not (value is None or _is_number(value)):
-            raise bad(f"metric {name!r} must be a number, got {value!r:.60}")
-    for name in ("data_fingerprint", "message"):
-        if name in record and not isinstance(record[name], str):
-            raise bad(f"'{name}' must be a string, got {record[name]!r:.60}")
-    if record["status"] == "ok":
-        _check_ok_metrics(record, bad)
-    stem = Path(path).stem
-    if record["key"] != stem:
-        raise bad(f"its 'key' {record['key']!r} does not match its file name (key {stem!r})")
-    fraction = record.get("budget_fraction", 1.0)
-    if not _is_number(fraction) or not 0 < fraction <= 1:
-        raise bad(f"'budget_fraction' must be a number in (0, 1], got {fraction!r:.60}")
-    trial_settings = record.get("trial_settings", {"strength": record["strength"]})
-    if (not isinstance(trial_settings, dict)
-            or not all(_is_number(v) for v in trial_settings.values())):
-        raise bad(f"'trial_settings' must map names to numbers, got {trial_settings!r:.60}")
-    trial = record.get("trial", 0)
-    if isinstance(trial, bool) or not isinstance(trial, int):
-        raise bad(f"'trial' must be an integer, got {trial!r:.60}")
-    expected = run_key(record["arm"], trial_settings, record["seed"], fraction, trial)
-    if record["key"] != expected:
-        raise bad(f"its 'key' {record['key']!r} does not match its arm, strength and seed "
-                  f"(with its trial settings and budget fraction: key {expected!r})")
+        raise InvalidRunRecord(path, f"it holds a JSON {type(record).__name__}, not an object")
+    read_typed(record, path, run_key=lambda r: run_key(r.arm, r.trial_settings, r.seed,
+                                                       r.budget_fraction, r.trial))
     return record
 
 
