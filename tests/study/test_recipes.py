@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import copy
 import json
+import textwrap
 import math
 
 import pytest
@@ -445,3 +446,36 @@ def test_an_arm_without_strength_in_a_grid_study_is_refused(tiny_doc):
     message = _error(tiny_doc)
     assert "'arms.fixed_norm.strength' is needed" in message
     assert "search.strength or grid" in message
+
+
+def test_halving_study_rerun_reuses_every_run_and_reports(tmp_path, capsys):
+    # the command line counts the rung runs as reused on a rerun (they are not retrained),
+    # and --report-only merges a halving study without asking for the dropped trials
+    from holonomic.cli import main
+
+    study = tmp_path / "hv.toml"
+    study.write_text(textwrap.dedent("""
+        [study]
+        seeds = 2
+        trials = 4
+        halving = true
+        [data]
+        source = "demo"
+        train_size = 120
+        [model]
+        widths = [8]
+        [budget]
+        epochs = 4
+        [arms.weight_decay]
+        [arms.fixed_norm]
+        """))
+    args = ["study", str(study), "--out", str(tmp_path / "out"), "--quiet", "--no-plots"]
+    assert main(args) == 0
+    assert "(24 trained now, 0 reused)" in capsys.readouterr().out  # 16 rung + 8 full runs
+    stamps = {p.name: p.stat().st_mtime_ns for p in (tmp_path / "out" / "runs").glob("*.json")}
+    assert main(args) == 0
+    assert "(0 trained now, 24 reused)" in capsys.readouterr().out
+    assert stamps == {p.name: p.stat().st_mtime_ns
+                      for p in (tmp_path / "out" / "runs").glob("*.json")}
+    assert main(args + ["--report-only"]) == 0
+    assert "halving" in (tmp_path / "out" / "report.md").read_text().lower()

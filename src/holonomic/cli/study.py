@@ -92,10 +92,13 @@ def _stored_keys(config, out: str, shard) -> set[str]:
     """Keys of the runs of this command (the study, or one shard of it) already stored,
     valid, under ``out`` (they are reused, not trained)."""
     from holonomic.study import storage
+    from holonomic.study.execution import halving_rung
     from holonomic.study.runner import plan_runs
     from holonomic.study.sharding import shard_runs
 
     specs = plan_runs(config)
+    if config.halving is not None:  # its rung runs are reused too
+        specs = halving_rung(config) + specs
     if shard is not None:
         specs = shard_runs(specs, *shard)
     try:
