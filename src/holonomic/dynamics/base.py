@@ -287,7 +287,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
     #: holds raw pointers into the original's tensors), and torch's hook
     #: registries, which torch's own ``__getstate__`` leaves out too.
     _transient: tuple[str, ...] = (
-        "_kernels", "_noise_buffers",
+        "_kernels", "_noise_buffers", "_labels", "_dispatch",
         "_first_step_checked", "_checked_settings", "_optimizer_step_pre_hooks", "_optimizer_step_post_hooks",
         "_optimizer_state_dict_pre_hooks", "_optimizer_state_dict_post_hooks",
         "_optimizer_load_state_dict_pre_hooks", "_optimizer_load_state_dict_post_hooks",
@@ -337,6 +337,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
     def backend(self, value: str) -> None:
         self.__dict__["_backend"] = check_backend(value)
         self.__dict__.pop("_kernels", None)
+        self.__dict__.pop("_dispatch", None)
 
     def scheme_for(self, group: dict[str, Any]) -> Scheme:  # pragma: no cover - abstract
         """The scheme table a param group runs."""
@@ -358,6 +359,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
 
     @kernels.setter
     def kernels(self, value: list[Kernel]) -> None:
+        self.__dict__.pop("_dispatch", None)
         value = list(value)
         if not value or value[-1].name != "reference":
             from holonomic.dynamics.kernels import ReferenceKernel
@@ -484,6 +486,8 @@ class HolonomicIntegrator(torch.optim.Optimizer):
         if buffers is None:
             buffers = self.__dict__["_noise_buffers"] = NoiseBuffers()
         own_force = type(self).force is HolonomicIntegrator.force
+        labels = self.__dict__.setdefault("_labels", {})
+        dispatch = self.__dict__.setdefault("_dispatch", {})
         inputs: list[StepInput] = []
         assignment: list[Kernel] = []
         seen: set[int] = set()
@@ -496,6 +500,11 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             scheme = self.scheme_for(group)
             settings = self.settings_for(group)
             draws = scheme.noise_draws(settings)
+            group_level = scheme.group_level
+            cached = dispatch.get(g_index)
+            if cached is None or cached[0] is not scheme or cached[1] != settings:
+                cached = dispatch[g_index] = (scheme, settings, {})
+            chosen = cached[2]  # kernel by (parameter, constraint, dtype, device, layout), for these settings
             names = group.get("param_names")
             scale = group.get("dataset_size")
             scale = 1.0 if scale is None else float(scale)
@@ -514,14 +523,22 @@ class HolonomicIntegrator(torch.optim.Optimizer):
                 else:
                     noise = tuple(buffers.draw(p, j, generator) for j in range(draws))
                 grad, g_scale, g_decay = (p.grad, scale, decay) if own_force else (self.force(p, group), 1.0, 0.0)
-                inputs.append(StepInput(p, step_label(p, names, g_index, index), g_index, index, p.detach(), grad,
+                key = (g_index, index, id(p), tuple(names) if names else None)
+                label = labels.get(key)
+                if label is None:
+                    label = labels[key] = step_label(p, names, g_index, index)
+                inputs.append(StepInput(p, label, g_index, index, p.detach(), grad,
                                         g_scale, g_decay, momentum, noise, geometry, settings, scheme))
-                if scheme.group_level or id(p) in seen:
+                if group_level or id(p) in seen:
                     assignment.append(reference)
                 else:
                     layout = layout_of(p, grad, momentum)
-                    assignment.append(next(k for k in kernels if k.supports(
-                        scheme, settings, geometry, p.dtype, p.device, layout)))
+                    case = (id(p), geometry, p.dtype, p.device, layout)
+                    kernel = chosen.get(case)
+                    if kernel is None:
+                        kernel = chosen[case] = next(k for k in kernels if k.supports(
+                            scheme, settings, geometry, p.dtype, p.device, layout))
+                    assignment.append(kernel)
                 seen.add(id(p))
         return inputs, assignment
 

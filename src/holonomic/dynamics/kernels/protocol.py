@@ -8,6 +8,7 @@ from typing import Mapping, Protocol, Sequence, runtime_checkable
 import torch
 from torch import Tensor
 
+from holonomic.dynamics.schemes import BAOAB
 from holonomic.dynamics.transaction import GroupResult, StepInput, StepResult
 from holonomic.geometry.base import HALF_DTYPES, Constraint
 
@@ -59,8 +60,6 @@ class Kernel(Protocol):
 
 def is_plain_baoab(scheme: object, settings: object) -> bool:
     """The BAOAB-RATTLE table in one drift per half step: what the fast kernels implement."""
-    from holonomic.dynamics.schemes import BAOAB
-
     return scheme is BAOAB and getattr(settings, "substeps", 1) == 1
 
 
