@@ -166,3 +166,23 @@ def test_adaptive_groups_run_on_the_reference_kernel():
     opt = hn.AdaptiveLangevin(net.named_parameters(), lr=0.02, temperature=0.3)
     _run(net, opt, 2)
     assert set(dict(opt.last_info.kernels).values()) == {"reference"}
+
+
+@pytest.mark.parametrize("bad", ["0.weight", "4.bias"])
+def test_adaptive_failure_names_the_parameter_with_the_bad_gradient(bad):
+    # the thermostat couples a group's parameters (a NaN reaches every momentum through xi);
+    # the error names the parameter whose gradient was not finite, not the first constrained one
+    net = _mixed()
+    opt = hn.AdaptiveLangevin(net.named_parameters(), lr=0.02, temperature=0.3)
+    _run(net, opt, 2)
+    before = _snapshot(net, opt)
+    friction = opt.thermostat_friction()
+    x, y = _data()
+    opt.zero_grad()
+    ((net(x) - y) ** 2).mean().backward()
+    dict(net.named_parameters())[bad].grad.view(-1)[0] = float("nan")
+    with pytest.raises(hn.IntegrationError, match="non-finite gradient") as err:
+        opt.step()
+    assert err.value.parameter == bad
+    _assert_unchanged(before, net, opt)
+    assert opt.thermostat_friction() == friction
