@@ -504,6 +504,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             cached = dispatch.get(g_index)
             if cached is None or cached[0] is not scheme or cached[1] != settings:
                 cached = dispatch[g_index] = (scheme, settings, {})
+            settings = cached[1]  # the same object while unchanged: kernels' caches compare it by identity first
             chosen = cached[2]  # kernel by (parameter, constraint, dtype, device, layout), for these settings
             names = group.get("param_names")
             scale = group.get("dataset_size")

@@ -22,12 +22,16 @@ A step of a holonomic integrator is all or nothing::
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Iterable, Sequence
 
 import torch
 from torch import Tensor
 
 from holonomic.geometry.base import Constraint
+
+if TYPE_CHECKING:  # pragma: no cover
+    from holonomic.dynamics.operators import Settings
+    from holonomic.dynamics.schemes import Scheme
 
 __all__ = [
     "IntegrationError",
@@ -149,8 +153,8 @@ class StepInput:
     momentum: Tensor | None
     noise: tuple[Tensor, ...]
     constraint: Constraint
-    settings: Any  # holonomic.dynamics.operators.Settings
-    scheme: Any  # holonomic.dynamics.schemes.Scheme
+    settings: "Settings"
+    scheme: "Scheme"
 
     def force(self) -> Tensor:
         """``grad_scale * grad + weight_decay * position`` (new tensor unless both are trivial)."""
@@ -230,12 +234,6 @@ def _all_true(flags: Sequence[Tensor | bool]) -> list[bool]:
     tensors = [f for f in flags if isinstance(f, Tensor)]
     values = iter(torch.stack([t.reshape(()) for t in tensors]).cpu().tolist()) if tensors else iter(())
     return [bool(next(values)) if isinstance(f, Tensor) else bool(f) for f in flags]
-
-
-#: A kernel's entry point as the transaction calls it: inputs in, one result per input
-#: (``None``: declined, computed by the reference kernel instead) and group results out.
-KernelRun = Callable[[Sequence[StepInput], Mapping[int, Mapping[str, Tensor]]],
-                     tuple[list[StepResult | None], dict[int, GroupResult]]]
 
 
 def run_step(
