@@ -142,7 +142,7 @@ def test_series_pieces_against_outside_values():
     assert series_degree(sqrt_series(), 0.3, 1e-16) is None
 
 
-def test_square_fast_path_failure_changes_nothing():
+def test_square_kernel_failure_changes_nothing():
     layer = nn.Linear(4, 4, bias=False).double()
     with torch.no_grad():
         q, _ = torch.linalg.qr(torch.randn(4, 4, generator=torch.Generator().manual_seed(0), dtype=torch.float64))
@@ -164,7 +164,7 @@ def test_square_fast_path_failure_changes_nothing():
     assert torch.equal(before[0]["weight"], layer.weight.detach())
 
 
-def test_square_fast_path_float32_stays_on_the_set_and_near_reference():
+def test_square_kernel_float32_stays_on_the_set_and_near_reference():
     # float32: the drift check rarely fires, so this covers the uncorrected branch; the
     # constraint must hold to the dtype tolerance (8 eps, geometry.base.default_tolerance)
     g = torch.Generator().manual_seed(5)
@@ -348,4 +348,4 @@ def test_cold_step_float32_momentum_stays_tangent(lr):
         worst = max(worst, float(geometry.tangent_residual(layer.weight.detach(), opt.state[layer.weight]["momentum"])))
     assert worst <= default_tolerance(torch.float32)
     assert hn.residuals(layer)["weight"] <= default_tolerance(torch.float32)
-    assert degrees  # the fast path ran
+    assert {k for _, k in opt.last_info.kernels} == {"square-orthonormal"} and degrees
