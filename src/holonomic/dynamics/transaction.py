@@ -189,15 +189,19 @@ class GroupResult:
 
 
 class NoiseBuffers:
-    """One reusable buffer per (parameter, draw), kept outside the optimizer's state
-    (not checkpointed): a buffer is only read within the step that filled it."""
+    """One reusable buffer per parameter for its first draw, kept outside the optimizer's
+    state (not checkpointed): a buffer is only read within the step that filled it.  Further
+    draws of a step (substeps of the overdamped scheme) get fresh tensors, so that the memory
+    kept does not grow with the number of substeps."""
 
     def __init__(self) -> None:
-        self._buffers: dict[tuple[int, int], Tensor] = {}
+        self._buffers: dict[int, Tensor] = {}
 
     def draw(self, like: Tensor, slot: int, generator: torch.Generator) -> Tensor:
         """Standard normal noise shaped like ``like`` (the values of ``torch.randn``)."""
-        key = (id(like), slot)
+        if slot:
+            return torch.empty_like(like, memory_format=torch.contiguous_format).normal_(generator=generator)
+        key = id(like)
         buf = self._buffers.get(key)
         if buf is None or buf.shape != like.shape or buf.dtype != like.dtype or buf.device != like.device:
             buf = self._buffers[key] = torch.empty_like(like, memory_format=torch.contiguous_format)
