@@ -505,8 +505,9 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             if cached is None or cached[0] is not scheme or cached[1] != settings:
                 cached = dispatch[g_index] = (scheme, settings, {})
             settings = cached[1]  # the same object while unchanged: kernels' caches compare it by identity first
-            chosen = cached[2]  # kernel by (parameter, constraint, dtype, device, layout), for these settings
+            chosen = cached[2]  # per parameter: (constraint, dtype, device, layout, kernel), for these settings
             names = group.get("param_names")
+            names_key = tuple(names) if names else None
             scale = group.get("dataset_size")
             scale = 1.0 if scale is None else float(scale)
             decay = float(group.get("weight_decay", 0.0))
@@ -518,13 +519,15 @@ class HolonomicIntegrator(torch.optim.Optimizer):
                 geometry = constraint_of(p) or UNCONSTRAINED
                 momentum = self.state[p].get("momentum") if scheme.momentum and p in self.state else None
                 generator = transaction.generator(p.device) if draws else None
-                if id(p) in seen:  # listed twice: its own noise, and the reference kernel
+                if not draws:
+                    noise: tuple[Tensor, ...] = ()
+                elif id(p) in seen:  # listed twice: its own noise, and the reference kernel
                     noise = tuple(torch.randn(p.shape, generator=generator, dtype=p.dtype, device=p.device)
                                   for _ in range(draws))
                 else:
                     noise = tuple(buffers.draw(p, j, generator) for j in range(draws))
                 grad, g_scale, g_decay = (p.grad, scale, decay) if own_force else (self.force(p, group), 1.0, 0.0)
-                key = (g_index, index, id(p), tuple(names) if names else None)
+                key = (g_index, index, id(p), names_key)
                 label = labels.get(key)
                 if label is None:
                     label = labels[key] = step_label(p, names, g_index, index)
@@ -534,12 +537,13 @@ class HolonomicIntegrator(torch.optim.Optimizer):
                     assignment.append(reference)
                 else:
                     layout = layout_of(p, grad, momentum)
-                    case = (id(p), geometry, p.dtype, p.device, layout)
-                    kernel = chosen.get(case)
-                    if kernel is None:
-                        kernel = chosen[case] = next(k for k in kernels if k.supports(
+                    entry = chosen.get(id(p))
+                    if (entry is None or entry[0] is not geometry or entry[3] != layout or entry[1] != p.dtype
+                            or entry[2] != p.device):
+                        kernel = next(k for k in kernels if k.supports(
                             scheme, settings, geometry, p.dtype, p.device, layout))
-                    assignment.append(kernel)
+                        entry = chosen[id(p)] = (geometry, p.dtype, p.device, layout, kernel)
+                    assignment.append(entry[4])
                 seen.add(id(p))
         return inputs, assignment
 
