@@ -46,9 +46,9 @@ SCHEDULERS = {
 }
 
 PATHS = {
-    "native": dict(),  # the default on the CPU (falls back to the eager path without a compiler)
-    "eager": dict(compiled=False),
-    "reference": dict(compiled=False),
+    "native": dict(),  # the default on the CPU (falls back to the eager kernels without a compiler)
+    "eager": dict(backend="eager"),
+    "reference": dict(backend="reference"),
 }
 
 
@@ -56,8 +56,6 @@ def _run(make_opt, scheduler_name, path=None):
     net = _net()
     x, y = _data()
     opt = make_opt(net.parameters())
-    if path == "reference":
-        opt._reference = True
     sched = SCHEDULERS[scheduler_name](opt)
     trajectory, lrs = [], []
     for _ in range(STEPS):
@@ -233,8 +231,7 @@ def test_zero_lr_steps_follow_sgd(path, schedule):
     theirs.load_state_dict(ours.state_dict())
     x = torch.randn(16, 6, dtype=torch.float64)
     opt = hn.Langevin(ours.parameters(), lr=0.05, momentum=0.9, weight_decay=1e-3,
-                      compiled=False if path == "eager" else None)
-    opt._reference = path == "reference"
+                      backend={"eager": "eager", "reference": "reference"}.get(path, "auto"))
     sgd = torch.optim.SGD(theirs.parameters(), lr=0.05, momentum=0.9, weight_decay=1e-3)
 
     def make(o):

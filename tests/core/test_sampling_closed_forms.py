@@ -102,13 +102,13 @@ def test_von_mises_fisher_mean_resultant_length(scheme):
 def test_broken_noise_scale_fails_the_vmf_check(monkeypatch):
     """The same check rejects a thermostat whose noise is 15% too large."""
 
-    def broken_thermostat(phase, fraction, *, force, geometry, settings, generator):
+    def broken_thermostat(phase, fraction, *, force, geometry, settings, noise, state):
         gh = settings.friction * fraction * settings.step
-        noise = torch.randn(phase.p.shape, generator=generator, dtype=phase.p.dtype)
         scale = 1.15 * math.sqrt(settings.temperature * -math.expm1(-2 * gh))
-        phase.p = geometry.tangent(phase.w, phase.p * math.exp(-gh) + scale * noise)
+        phase.p = geometry.tangent(phase.w, phase.p * math.exp(-gh) + scale * noise())
 
     monkeypatch.setitem(operators.OPERATORS, "broken_thermostat", broken_thermostat)
+    monkeypatch.setitem(operators.NOISE_DRAWS, "broken_thermostat", operators.NOISE_DRAWS["thermostat"])
 
     class Broken(hn.Langevin):
         scheme = (("kick", 1.0), ("drift", 0.5), ("broken_thermostat", 1.0), ("drift", 0.5))

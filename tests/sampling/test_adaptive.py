@@ -220,7 +220,7 @@ def test_fixed_friction_groups_are_plain_langevin():
     exact Ornstein-Uhlenbeck O (same noise stream): equal to roundoff in float64."""
     model = _fixed_norm_model()
     plain = _trajectory(model, hn.Langevin(model.parameters(), lr=0.01, momentum=0.9,
-                                           temperature=0.05, seed=3, compiled=False))
+                                           temperature=0.05, seed=3, backend="eager"))
     model = _fixed_norm_model()
     fixed = _trajectory(model, hn.AdaptiveLangevin(model.parameters(), lr=0.01, momentum=0.9,
                                                    temperature=0.05, seed=3, adaptive=False))

@@ -26,7 +26,7 @@ def test_bench_command_writes_results(tmp_path, capsys):
     assert main(["--quick", "--only", "steps", "memory", "--json", str(path), "--threads", "1"]) == 0
     result = json.loads(path.read_text())
     assert result["threads"] == 1 and result["dtype"] == "float32"
-    for key in ("t0_vs_sgd", "hot_vs_plain_langevin", "t0_fast_vs_reference"):
+    for key in ("t0_vs_sgd", "hot_vs_plain_langevin", "t0_eager_vs_reference", "t0_vs_sgd_eager"):
         assert math.isfinite(result[key]["ratio"]) and result[key]["ratio"] > 0
     memory = result["memory"]
     # one float32 momentum buffer per parameter, as torch.optim.SGD(momentum=...) keeps

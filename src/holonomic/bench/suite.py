@@ -28,14 +28,17 @@ Benchmarks (issue 6):
    both superlinear when the large sizes leave it).
 6. Memory: optimizer state bytes per parameter, and peak resident memory
    growth of a short training run against SGD with momentum.
+7. Mixed model: MLP 784-512-512-10 with the first weight ``FixedNorm``, the
+   square hidden weight ``Orthonormal`` and the rest free, batch 128, T = 0:
+   the optimizer step (gradients fixed) and the training step against
+   SGD's (step, or training step) plus the three 512 x 512 products that the
+   exact orthonormal step needs.
 
-Benchmarks 1-3 run twice: with ``compiled=False`` (the eager fast path) and
-with ``compiled=True`` (``compiled``: the native C++ kernel, which is also
-the default on the CPU, or torch.compile where that cannot be built; the
-table says which), the latter plus a T = 0 step on a single 2048 x 2048
-tensor, where overheads matter least.  Benchmarks 5 and 6 use the default.
-Also reported: the eager fast path against the plain per-parameter
-reference path.
+Benchmarks 1-3 run with the default backend (``"auto"``: the native C++
+kernel on the CPU where it can be built; the table names the kernels that
+ran, from ``last_info.kernels``) and with ``backend="eager"``; benchmark 1
+also on a single 2048 x 2048 tensor, where overheads matter least.  Also
+reported: the eager kernels against the reference kernel.
 """
 
 from __future__ import annotations
@@ -56,7 +59,6 @@ import torch
 from torch import nn
 
 import holonomic as hn
-from holonomic.dynamics import compiled as compiled_mod
 
 __all__ = ["run_suite", "main", "compare"]
 
@@ -149,31 +151,38 @@ SHAPE = (784, 1024, 1024, 10)
 LR, MOMENTUM = 0.01, 0.9
 
 
-def bench_steps(rounds: int, compiled: bool = False) -> dict[str, Any]:
-    """Benchmarks 1 and 2 (and, eager only, fast path vs reference); keys get
-    a ``_compiled`` suffix for ``Langevin(compiled=True)``."""
-    suffix = "_compiled" if compiled else ""
+def _kernels(opt: torch.optim.Optimizer) -> str:
+    """The kernels that took the optimizer's last step (``last_info.kernels``)."""
+    return "+".join(sorted({k for _, k in opt.last_info.kernels}))
+
+
+def bench_steps(rounds: int, backend: str = "auto") -> dict[str, Any]:
+    """Benchmarks 1 and 2 (and, for ``"eager"``, the eager kernels vs the reference);
+    keys get an ``_eager`` suffix for ``backend="eager"``."""
+    suffix = "" if backend == "auto" else f"_{backend}"
     con, free = constrain_rows(mlp(SHAPE)), mlp(SHAPE)
     fake_grads(con)
     fake_grads(free)
-    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, compiled=compiled)
+    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, backend=backend)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
-    out: dict[str, Any] = {}
-    if compiled:
-        out["compile_seconds"] = _first_call_seconds(ours.step)
-        _check_compiled(ours)
-        out["compiled_kernel"] = _kernel_name(ours)
+    out: dict[str, Any] = {"first_step_seconds" + suffix: _first_call_seconds(ours.step),
+                           "kernels" + suffix: _kernels(ours)}
     out["t0_vs_sgd" + suffix] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
-    hot = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, temperature=1e-4, compiled=compiled)
+    hot = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, temperature=1e-4, backend=backend)
     plain = PlainLangevin(free.parameters(), *hot.step_and_friction(0), 1e-4)
-    if compiled:
-        out["compile_seconds_hot"] = _first_call_seconds(hot.step)
-        _check_compiled(hot)
     out["hot_vs_plain_langevin" + suffix] = compare(hot.step, plain.step, rounds=rounds, calls=3)
-    if not compiled:
-        ref = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM)
-        ref._reference = True
-        out["t0_fast_vs_reference"] = compare(ours.step, ref.step, rounds=max(3, rounds // 3))
+    if backend == "eager":
+        ref = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, backend="reference")
+        out["t0_eager_vs_reference"] = compare(ours.step, ref.step, rounds=max(3, rounds // 3))
+    else:
+        # one large tensor, where per-step overheads are small against the memory passes
+        layer, one = nn.Linear(2048, 2048, bias=False), nn.Linear(2048, 2048, bias=False)
+        hn.constrain(layer, weight=hn.FixedNorm(1.0))
+        fake_grads(layer)
+        fake_grads(one)
+        big = hn.Langevin.from_sgd(layer.parameters(), lr=LR, momentum=MOMENTUM, backend=backend)
+        sgd_big = torch.optim.SGD(one.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
+        out["one_tensor_vs_sgd"] = compare(big.step, sgd_big.step, rounds=rounds, calls=3)
     return out
 
 
@@ -183,50 +192,65 @@ def _first_call_seconds(step: Step) -> float:
     return time.perf_counter() - start
 
 
-def bench_training(rounds: int, batch: int = 128, compiled: bool = False) -> dict[str, Any]:
+def bench_training(rounds: int, batch: int = 128, backend: str = "auto") -> dict[str, Any]:
     g = torch.Generator().manual_seed(2)
     x = torch.randn(batch, SHAPE[0], generator=g)  # invented data
     y = torch.randint(0, SHAPE[-1], (batch,), generator=g)
     con, free = constrain_rows(mlp(SHAPE)), mlp(SHAPE)
-    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, compiled=compiled)
+    ours = hn.Langevin.from_sgd(con.parameters(), lr=LR, momentum=MOMENTUM, backend=backend)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
     step = _train_step(con, ours, x, y)
-    if compiled:
-        step()
-        _check_compiled(ours)
-    key = "train_step_vs_sgd" + ("_compiled" if compiled else "")
+    key = "train_step_vs_sgd" + ("" if backend == "auto" else f"_{backend}")
     return {key: compare(step, _train_step(free, sgd, x, y), rounds=rounds, calls=2)}
 
 
-def bench_compiled(rounds: int) -> dict[str, Any]:
-    """Benchmarks 1-3 again with ``Langevin(compiled=True)``; the first step's
-    wall time (mostly compilation) is reported separately."""
-    out = bench_steps(rounds, compiled=True)
-    out.update(bench_training(rounds, compiled=True))
-    # one large tensor, where per-step overheads are small against the memory passes
-    layer, free = nn.Linear(2048, 2048, bias=False), nn.Linear(2048, 2048, bias=False)
-    hn.constrain(layer, weight=hn.FixedNorm(1.0))
-    fake_grads(layer)
-    fake_grads(free)
-    ours = hn.Langevin.from_sgd(layer.parameters(), lr=LR, momentum=MOMENTUM, compiled=True)
+MIXED_SHAPE = (784, 512, 512, 10)
+
+
+def mixed_model(seed: int = 0) -> nn.Sequential:
+    """The README's quick-start mix: first weight ``FixedNorm``, square hidden weight
+    ``Orthonormal`` (started orthogonal), the rest free."""
+    model = mlp(MIXED_SHAPE, seed=seed)
+    with torch.no_grad():
+        nn.init.orthogonal_(model[2].weight)
+    hn.constrain(model[0], weight=hn.FixedNorm(1.0))
+    hn.constrain(model[2], weight=hn.Orthonormal())
+    return model
+
+
+def bench_mixed(rounds: int, batch: int = 128) -> dict[str, Any]:
+    """Benchmark 7: the mixed model against SGD plus the three n x n products of an
+    exact orthonormal step (``W^T V``, ``W A``, ``W A^2``)."""
+    n = MIXED_SHAPE[1]
+    a, b = torch.randn(n, n), torch.randn(n, n)
+
+    def products() -> None:
+        for _ in range(_STEP_PRODUCTS):
+            torch.mm(a, b)
+
+    g = torch.Generator().manual_seed(2)
+    x = torch.randn(batch, MIXED_SHAPE[0], generator=g)  # invented data
+    y = torch.randint(0, MIXED_SHAPE[-1], (batch,), generator=g)
+    ours_net, free = mixed_model(), mlp(MIXED_SHAPE)
+    ours = hn.Langevin.from_sgd(ours_net.parameters(), lr=LR, momentum=MOMENTUM)
     sgd = torch.optim.SGD(free.parameters(), lr=LR, momentum=MOMENTUM, foreach=True)
-    out["compile_seconds_one_tensor"] = _first_call_seconds(ours.step)
-    _check_compiled(ours)
-    out["one_tensor_vs_sgd_compiled"] = compare(ours.step, sgd.step, rounds=rounds, calls=3)
+    ours_train, sgd_train = _train_step(ours_net, ours, x, y), _train_step(free, sgd, x, y)
+    ours_train()
+    out: dict[str, Any] = {"mixed_kernels": [k for _, k in ours.last_info.kernels]}
+
+    def sgd_and_products() -> None:
+        sgd.step()
+        products()
+
+    def sgd_train_and_products() -> None:
+        sgd_train()
+        products()
+
+    fake_grads(ours_net)
+    fake_grads(free)
+    out["mixed_step_vs_sgd_products"] = compare(ours.step, sgd_and_products, rounds=rounds, calls=3)
+    out["mixed_train_vs_sgd_products"] = compare(ours_train, sgd_train_and_products, rounds=rounds, calls=2)
     return out
-
-
-def _kernel_name(opt: hn.Langevin) -> str:
-    """Which kernel ``compiled=True`` ran: the native CPU kernel or torch.compile's."""
-    items = compiled_mod._collect(opt)
-    return "native C++" if items and compiled_mod._native_available(opt, items) else "torch.compile"
-
-
-def _check_compiled(opt: hn.Langevin) -> None:
-    """The compiled rows mean nothing if the step fell back to the eager path."""
-    if getattr(opt, "_compile_failed", False):
-        raise RuntimeError("Langevin(compiled=True) could not compile here (see the warning above); "
-                           "run the suite with --only steps training orthonormal scaling memory")
 
 
 def _train_step(model: nn.Module, opt: torch.optim.Optimizer, x: torch.Tensor, y: torch.Tensor) -> Step:
@@ -275,14 +299,13 @@ def bench_orthonormal(rounds: int, widths: tuple[int, ...], steps_check: int = 2
             with torch.no_grad():
                 nn.init.orthogonal_(ref_net[2].weight)
             hn.constrain(ref_net[2], weight=hn.Orthonormal())
-            ref = hn.Langevin.from_sgd(ref_net.parameters(), lr=LR, momentum=MOMENTUM)
-            ref._reference = True
+            ref = hn.Langevin.from_sgd(ref_net.parameters(), lr=LR, momentum=MOMENTUM, backend="reference")
             out["fast_vs_reference_orthonormal"] = compare(ours_step, _train_step(ref_net, ref, x, y),
                                                            rounds=rounds, warmup=1)
     return out
 
 
-#: n x n products of our T = 0 orthonormal step in float32 training (fast_orthonormal).
+#: n x n products of our T = 0 orthonormal step in float32 training (kernels.square_orthonormal).
 _STEP_PRODUCTS = 3
 
 
@@ -290,7 +313,7 @@ def _orthonormal_floor(width: int, x: torch.Tensor, y: torch.Tensor, *, their_st
                        rounds: int) -> dict[str, float]:
     """The least our training step can cost against the cayley map: our T = 0
     RATTLE step needs three n x n products (``W^T V``, ``W A``, ``W A^2``;
-    :mod:`holonomic.dynamics.fast_orthonormal`) on top of the plain training
+    :mod:`holonomic.dynamics.kernels.square_orthonormal`) on top of the plain training
     step (forward, backward, SGD on the same net without the constraint).
     Returns both times (ms) and ``(plain + 3 products) / cayley``."""
     net = _square_net(width, 0)
@@ -367,7 +390,7 @@ def bench_memory() -> dict[str, Any]:
     return {"memory": out}
 
 
-BENCHMARKS = ("steps", "training", "compiled", "orthonormal", "scaling", "memory")
+BENCHMARKS = ("steps", "training", "mixed", "orthonormal", "scaling", "memory")
 
 
 def run_suite(quick: bool = False, threads: int | None = None,
@@ -387,10 +410,12 @@ def run_suite(quick: bool = False, threads: int | None = None,
     }
     if "steps" in only:
         result.update(bench_steps(rounds))
+        result.update(bench_steps(rounds, backend="eager"))
     if "training" in only:
         result.update(bench_training(rounds))
-    if "compiled" in only:
-        result.update(bench_compiled(rounds))
+        result.update(bench_training(rounds, backend="eager"))
+    if "mixed" in only:
+        result.update(bench_mixed(rounds))
     if "orthonormal" in only:
         result.update(bench_orthonormal(max(3, rounds // 3), (512,) if quick else (512, 1024)))
     if "scaling" in only:
@@ -408,29 +433,26 @@ def format_table(r: dict[str, Any]) -> str:
     lines = [f"holonomic benchmark  {r['date']}  torch {r['torch']}  threads {r['threads']}  "
              f"cpus {r['cpu_count']}  {r['dtype']} CPU",
              "ratio = median over interleaved rounds [quartiles]; target in brackets"]
-    if "t0_vs_sgd" in r:
-        lines += ["  Langevin(compiled=False): the eager fast path",
-                  f"1 T=0 step vs SGD(momentum, foreach)            [<=1.5]   {_fmt(r['t0_vs_sgd'])}",
-                  f"2 T>0 step vs unconstrained Langevin (same noise) [<=1.2] {_fmt(r['hot_vs_plain_langevin'])}"]
-    if "train_step_vs_sgd" in r:
-        lines.append(f"3 training step vs SGD, batch 128               [<=1.10]  {_fmt(r['train_step_vs_sgd'])}")
-    if "t0_vs_sgd_compiled" in r:
-        lines += [f"  Langevin(compiled=True), {r.get('compiled_kernel', '?')} kernel (on the CPU the native kernel "
-                  "is also the default); first step (building) "
-                  f"{r['compile_seconds']:.1f} s at T=0, "
-                  f"{r['compile_seconds_hot']:.1f} s at T>0, "
-                  f"{r.get('compile_seconds_one_tensor', float('nan')):.1f} s for the single tensor:",
-                  f"1c T=0 step vs SGD(momentum, foreach)           [<=1.5]   {_fmt(r['t0_vs_sgd_compiled'])}",
-                  f"2c T>0 step vs unconstrained Langevin           [<=1.2]   "
-                  f"{_fmt(r['hot_vs_plain_langevin_compiled'])}",
-                  f"3c training step vs SGD, batch 128              [<=1.10]  "
-                  f"{_fmt(r['train_step_vs_sgd_compiled'])}",
-                  f"  T=0 step on one 2048 x 2048 FixedNorm tensor vs SGD           "
-                  f"{_fmt(r['one_tensor_vs_sgd_compiled'])}"]
+    for suffix, tag, name in (("", "", "default backend (auto)"), ("_eager", "e", 'backend="eager"')):
+        if "t0_vs_sgd" + suffix in r:
+            lines += [f"  Langevin, {name}: kernels {r['kernels' + suffix]}, first step "
+                      f"{r['first_step_seconds' + suffix]:.2f} s (building the native kernel, if not cached)",
+                      f"1{tag} T=0 step vs SGD(momentum, foreach)        [<=1.2]   {_fmt(r['t0_vs_sgd' + suffix])}",
+                      f"2{tag} T>0 step vs unconstrained Langevin      [<=1.2]   "
+                      f"{_fmt(r['hot_vs_plain_langevin' + suffix])}"]
+        if "train_step_vs_sgd" + suffix in r:
+            lines.append(f"3{tag} training step vs SGD, batch 128          [<=1.10]  "
+                         f"{_fmt(r['train_step_vs_sgd' + suffix])}")
+    if "one_tensor_vs_sgd" in r:
+        lines.append(f"  T=0 step on one 2048 x 2048 FixedNorm tensor vs SGD         {_fmt(r['one_tensor_vs_sgd'])}")
+    if "mixed_step_vs_sgd_products" in r:
+        lines += [f"7  mixed model (kernels {', '.join(r['mixed_kernels'])}):",
+                  f"7a optimizer step vs SGD step + 3 products      [<=1.3]   {_fmt(r['mixed_step_vs_sgd_products'])}",
+                  f"7b training step vs SGD's + 3 products          [<=1.1]   {_fmt(r['mixed_train_vs_sgd_products'])}"]
     for key, row in r.items():
         if key.startswith("orthonormal_"):
             for kind in ("cayley", "matrix_exp"):
-                lines.append(f"4 {key} training step vs torch {kind:<10} [<=0.5] {_fmt(row[kind])}  "
+                lines.append(f"4 {key} training step vs torch {kind:<10} [<=0.40] {_fmt(row[kind])}  "
                              f"residual ours {row['our_residual']:.1e} theirs {row[kind]['their_residual']:.1e}")
             f = row["floor"]
             lines.append(f"  {key}: one n x n product {f['product_ms']:.1f} ms, plain SGD training step "
@@ -446,10 +468,10 @@ def format_table(r: dict[str, Any]) -> str:
                      f"SGD {m['sgd']['state_bytes_per_param']:.2f};  peak RSS of a 5-step training run "
                      f"{m['holonomic']['peak_rss_mib']:.0f} vs {m['sgd']['peak_rss_mib']:.0f} MiB "
                      f"(ratio {m['holonomic']['peak_rss_mib'] / m['sgd']['peak_rss_mib']:.2f})")
-    for key, label in (("t0_fast_vs_reference", "T=0 step, FixedNorm MLP"),
-                       ("fast_vs_reference_orthonormal", "T=0 training step, Orthonormal 512")):
+    for key, label in (("t0_eager_vs_reference", "T=0 step, FixedNorm MLP"),
+                       ("fast_vs_reference_orthonormal", "T=0 training step, Orthonormal 512, default backend")):
         if key in r:
-            lines.append(f"  fast path vs plain reference path ({label}): {_fmt(r[key])}")
+            lines.append(f"  vs the reference kernel ({label}): {_fmt(r[key])}")
     return "\n".join(lines)
 
 

@@ -1,8 +1,15 @@
-"""Dynamics: integrators that move weights while keeping them on their constraint sets."""
+"""Dynamics: integrators that move weights while keeping them on their constraint sets.
 
-from holonomic.dynamics.base import HolonomicIntegrator, IntegrationError, ParameterStepInfo, StepInfo
+Three places hold the step: the scheme tables (:mod:`holonomic.dynamics.schemes`, built
+from the operators of :mod:`holonomic.dynamics.operators`), the kernels that compute
+them (:mod:`holonomic.dynamics.kernels`) and the transaction that commits a step
+(:mod:`holonomic.dynamics.transaction`)."""
+
+from holonomic.dynamics.base import HolonomicIntegrator
 from holonomic.dynamics.langevin import Langevin, OverdampedLangevin
-from holonomic.dynamics.operators import BAOAB, Phase, Settings, drift, kick, overdamped_move, run_scheme, thermostat
+from holonomic.dynamics.operators import Phase, Settings, drift, kick, overdamped_move, run_scheme, thermostat
+from holonomic.dynamics.schemes import ADAPTIVE_FRICTION, BAOAB, GEODESIC_BAOAB, OVERDAMPED, Scheme
+from holonomic.dynamics.transaction import IntegrationError, ParameterStepInfo, StepInfo
 
 __all__ = [
     "HolonomicIntegrator",
@@ -11,7 +18,11 @@ __all__ = [
     "StepInfo",
     "Langevin",
     "OverdampedLangevin",
+    "Scheme",
     "BAOAB",
+    "GEODESIC_BAOAB",
+    "OVERDAMPED",
+    "ADAPTIVE_FRICTION",
     "Phase",
     "Settings",
     "kick",

@@ -1,118 +1,41 @@
 """The stateful shell shared by the holonomic integrators.
 
 The optimizer classes keep ``param_groups``, ``state``, the seeded random
-generators and checkpointing; the arithmetic lives in
-:mod:`holonomic.dynamics.operators`.  Every step is transactional: new
-positions and momenta are computed into fresh tensors, all failure flags are
-checked with one host synchronisation, and only then are the parameters and
-the state written.
+generators and checkpointing.  A step gathers each parameter's plain inputs
+(:class:`holonomic.dynamics.transaction.StepInput`), picks per parameter the
+first kernel of the backend that supports it
+(:mod:`holonomic.dynamics.kernels`) and runs them all in one transaction
+(:mod:`holonomic.dynamics.transaction`): one host synchronisation for every
+ok flag, then one commit or one rollback.  The schemes are tables
+(:mod:`holonomic.dynamics.schemes`).
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from typing import Any, Callable, Iterable
 
 import torch
 from torch import Tensor
 
-from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of, parameter_label
+from holonomic.dynamics.kernels import Kernel, check_backend, kernels_for, layout_of
+from holonomic.dynamics.operators import Settings
+from holonomic.dynamics.schemes import Scheme
 from holonomic.dynamics.settings import check_lr, integrator_step_and_friction
+from holonomic.dynamics.transaction import (
+    IntegrationError,
+    NoiseBuffers,
+    ParameterStepInfo,
+    StepInfo,
+    StepInput,
+    Transaction,
+    run_step,
+)
+from holonomic.geometry import UNCONSTRAINED, constraint_of, parameter_label
 from holonomic.geometry.base import check_positive
 from holonomic.geometry.registry import check_not_replaced
 
-__all__ = ["IntegrationError", "ParameterStepInfo", "StepInfo", "HolonomicIntegrator", "Pending"]
-
-
-class IntegrationError(RuntimeError):
-    """A step could not be taken; no weight, momentum or generator state was changed.
-
-    Attributes:
-        parameter: readable name of the offending parameter.
-        reason: ``"non-finite gradient"``, ``"projection failed"`` or
-            ``"non-finite result"``.
-        group: index of the param group of the parameter (``None`` if unknown).
-    """
-
-    def __init__(self, message: str, *, parameter: str, reason: str, group: int | None = None) -> None:
-        super().__init__(message)
-        self.parameter = parameter
-        self.reason = reason
-        self.group = group
-
-
-@dataclass(frozen=True)
-class ParameterStepInfo:
-    """Diagnostics of one parameter for the last step (not checkpointed)."""
-
-    label: str
-    group: int
-    index: int
-    projection_iterations: int
-    kinetic_energy: Tensor | None
-    tangent_dof: int
-
-
-class StepInfo:
-    """Diagnostics of the last step, one entry per parameter that moved.
-
-    ``parameters`` is the tuple of :class:`ParameterStepInfo`, or a function
-    that builds it; it is then built on first access (the compiled step
-    defers this, so that a step pays nothing for diagnostics nobody reads).
-
-    ``retried_substeps`` maps the index of each param group whose step was
-    retried with more substeps (``retry_substeps``, see
-    :class:`holonomic.Langevin`) to the factor ``k`` that succeeded: that
-    group's A-steps ran with ``k`` times its ``substeps``.  Empty when the
-    step succeeded at the first attempt.
-    """
-
-    __slots__ = ("_parameters", "_build", "retried_substeps")
-
-    def __init__(self, parameters: tuple[ParameterStepInfo, ...] | Callable[[], tuple[ParameterStepInfo, ...]],
-                 retried_substeps: dict[int, int] | None = None) -> None:
-        if callable(parameters):
-            self._parameters, self._build = None, parameters
-        else:
-            self._parameters, self._build = tuple(parameters), None
-        self.retried_substeps: dict[int, int] = dict(retried_substeps or {})
-
-    @property
-    def parameters(self) -> tuple[ParameterStepInfo, ...]:
-        if self._parameters is None:
-            self._parameters, self._build = tuple(self._build()), None
-        return self._parameters
-
-    def __eq__(self, other: object) -> bool:
-        return (isinstance(other, StepInfo) and self.parameters == other.parameters
-                and self.retried_substeps == other.retried_substeps)
-
-    def __hash__(self) -> int:
-        return hash((self.parameters, tuple(sorted(self.retried_substeps.items()))))
-
-    def __repr__(self) -> str:
-        retried = f", retried_substeps={self.retried_substeps!r}" if self.retried_substeps else ""
-        return f"StepInfo(parameters={self.parameters!r}{retried})"
-
-    def __reduce__(self) -> tuple[Any, ...]:  # pickles the built tuple, not the function
-        return (StepInfo, (self.parameters, self.retried_substeps))
-
-
-@dataclass
-class Pending:
-    """A computed but not yet committed update of one parameter."""
-
-    param: Tensor
-    label: str
-    group: int
-    index: int
-    geometry: Constraint
-    grad_ok: Tensor
-    ok: Tensor
-    position: Tensor
-    momentum: Tensor | None
-    iterations: int
+__all__ = ["IntegrationError", "ParameterStepInfo", "StepInfo", "HolonomicIntegrator"]
 
 
 def step_label(p: Tensor, names: list[str] | None, group: int, index: int) -> str:
@@ -174,7 +97,9 @@ def _settings_snapshot(settings: dict[str, Any]) -> tuple | None:
 class HolonomicIntegrator(torch.optim.Optimizer):
     """Bookkeeping common to all holonomic integrators (see module docstring).
 
-    Subclasses define ``_validate_group(group)`` and ``_update(...)``.
+    Subclasses define ``_validate_group(group)``, :meth:`scheme_for` and
+    :meth:`settings_for`; :attr:`group_states` holds per-group state that a
+    scheme's group operators update (e.g. a thermostat friction).
     Param groups hold ``"lr"`` (and ``"momentum"``) with ``torch.optim.SGD``'s
     meaning; the integrator's step and friction follow from them
     (:meth:`step_and_friction`).
@@ -196,6 +121,8 @@ class HolonomicIntegrator(torch.optim.Optimizer):
         self.retried_steps = 0
         self._generators: dict[str, torch.Generator] = {}
         self.last_info: StepInfo | None = None
+        #: Per param group: state of the scheme's group operators (plain tensors).
+        self.group_states: list[dict[str, Tensor]] = []
         super().__init__(params, defaults)
 
     # -- groups ----------------------------------------------------------------
@@ -209,12 +136,18 @@ class HolonomicIntegrator(torch.optim.Optimizer):
         group = self.param_groups[-1]
         group["lr"] = check_lr(group["lr"])
         self._validate_group(group)
+        self.__dict__.setdefault("group_states", [])
+        self.group_states.append(self._initial_group_state(group))
         for p in group["params"]:
             if p.is_sparse:
                 raise ValueError("sparse parameters are not supported; use a dense nn.Embedding")
             constraint = constraint_of(p)
             if constraint is not None:
                 constraint.validate_shape(p.shape, parameter_label(p, "parameter"))
+
+    def _initial_group_state(self, group: dict[str, Any]) -> dict[str, Tensor]:
+        """The state of a new group's scheme operators (none by default)."""
+        return {}
 
     def _convert_group(self, param_group: dict[str, Any]) -> dict[str, Any]:
         """Without momentum (overdamped): ``step`` is ``lr``."""
@@ -349,12 +282,12 @@ class HolonomicIntegrator(torch.optim.Optimizer):
                                      f"{tuple(p.shape)}; load a checkpoint of the same model")
 
     # -- copies -------------------------------------------------------------------
-    #: Attributes that ``copy.deepcopy`` and ``pickle`` leave out: caches the
-    #: fast and compiled paths rebuild on the next step (the native kernel's
-    #: table holds raw pointers into the original's tensors), and torch's
-    #: hook registries, which torch's own ``__getstate__`` leaves out too.
+    #: Attributes that ``copy.deepcopy`` and ``pickle`` leave out: the kernels
+    #: and noise buffers, rebuilt on the next step (the native kernel's table
+    #: holds raw pointers into the original's tensors), and torch's hook
+    #: registries, which torch's own ``__getstate__`` leaves out too.
     _transient: tuple[str, ...] = (
-        "_scratch_buffers", "_native_table", "_scalar_table", "_native_failed", "_compile_failed",
+        "_kernels", "_noise_buffers", "_labels", "_dispatch",
         "_first_step_checked", "_checked_settings", "_optimizer_step_pre_hooks", "_optimizer_step_post_hooks",
         "_optimizer_state_dict_pre_hooks", "_optimizer_state_dict_post_hooks",
         "_optimizer_load_state_dict_pre_hooks", "_optimizer_load_state_dict_post_hooks",
@@ -394,11 +327,45 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             f = f + wd * p
         return f
 
-    def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint) -> tuple[
-        Tensor, Tensor | None, Tensor, int
-    ]:  # pragma: no cover - abstract
-        """Return (new position, new momentum or None, ok flag, iterations)."""
+    @property
+    def backend(self) -> str:
+        """The backend switch: ``"auto"``, ``"reference"``, ``"eager"`` or ``"native"``
+        (:mod:`holonomic.dynamics.kernels`); setting it takes effect at the next step."""
+        return self.__dict__.get("_backend", "auto")
+
+    @backend.setter
+    def backend(self, value: str) -> None:
+        self.__dict__["_backend"] = check_backend(value)
+        self.__dict__.pop("_kernels", None)
+        self.__dict__.pop("_dispatch", None)
+
+    def scheme_for(self, group: dict[str, Any]) -> Scheme:  # pragma: no cover - abstract
+        """The scheme table a param group runs."""
         raise NotImplementedError
+
+    def settings_for(self, group: dict[str, Any]) -> Settings:  # pragma: no cover - abstract
+        """The integrator settings of a param group (step, friction, temperature, ...)."""
+        raise NotImplementedError
+
+    @property
+    def kernels(self) -> list[Kernel]:
+        """The kernels a step may use, in order of preference (from :attr:`backend`;
+        assign a list to pin kernels, e.g. in tests; the reference kernel is always
+        added last)."""
+        kernels = self.__dict__.get("_kernels")
+        if kernels is None:
+            kernels = self.__dict__["_kernels"] = kernels_for(check_backend(self.backend))
+        return kernels
+
+    @kernels.setter
+    def kernels(self, value: list[Kernel]) -> None:
+        self.__dict__.pop("_dispatch", None)
+        value = list(value)
+        if not value or value[-1].name != "reference":
+            from holonomic.dynamics.kernels import ReferenceKernel
+
+            value.append(ReferenceKernel())
+        self.__dict__["_kernels"] = value
 
     @torch.compiler.disable(reason=NOT_TRACED)
     @torch.no_grad()
@@ -494,14 +461,91 @@ class HolonomicIntegrator(torch.optim.Optimizer):
                     f"{tuple(momentum.shape)}: the parameter was resized after the optimizer took steps; "
                     "nothing was changed. Build a new optimizer for the new shapes.")
 
-    #: Internal switch: ``True`` forces the plain per-parameter path, the
-    #: reference that every fast path is tested against (tests/speed).
-    _reference: bool = False
-
     def _take_step(self) -> None:
-        """One step from the gradients in ``.grad`` (subclasses may add fast paths
-        that fall back to :meth:`_reference_step`)."""
-        self._reference_step()
+        """One step from the gradients in ``.grad``: inputs in parameter order (the
+        noise drawn here, in that order), one kernel per parameter, one transaction."""
+        transaction = Transaction(self._generators, self.generator)
+        try:
+            inputs, assignment = self._step_inputs(transaction)
+        except BaseException:
+            transaction.rollback()
+            raise
+        kernels = self.kernels
+        self.last_info = run_step(inputs, assignment, kernels[-1], transaction=transaction,
+                                  group_states=self.group_states, store_momentum=self._store_momentum)
+
+    def _store_momentum(self, p: Tensor, momentum: Tensor | None) -> None:
+        if momentum is not None:
+            self.state[p]["momentum"] = momentum
+
+    def _step_inputs(self, transaction: Transaction) -> tuple[list[StepInput], list[Kernel]]:
+        """Each moving parameter's :class:`StepInput` and the kernel that computes it."""
+        kernels = self.kernels
+        reference = kernels[-1]
+        buffers = self.__dict__.get("_noise_buffers")
+        if buffers is None:
+            buffers = self.__dict__["_noise_buffers"] = NoiseBuffers()
+        own_force = type(self).force is HolonomicIntegrator.force
+        labels = self.__dict__.setdefault("_labels", {})
+        dispatch = self.__dict__.setdefault("_dispatch", {})
+        inputs: list[StepInput] = []
+        assignment: list[Kernel] = []
+        seen: set[int] = set()
+        for g_index, group in enumerate(self.param_groups):
+            lr = group["lr"]
+            if not lr >= 0:
+                raise ValueError(f"param group {g_index}: lr must be >= 0, got {lr!r}")
+            if lr == 0:  # e.g. a schedule that decays to zero: nothing moves
+                continue
+            scheme = self.scheme_for(group)
+            settings = self.settings_for(group)
+            draws = scheme.noise_draws(settings)
+            group_level = scheme.group_level
+            cached = dispatch.get(g_index)
+            if cached is None or cached[0] is not scheme or cached[1] != settings:
+                cached = dispatch[g_index] = (scheme, settings, {})
+            settings = cached[1]  # the same object while unchanged: kernels' caches compare it by identity first
+            chosen = cached[2]  # per parameter: (constraint, dtype, device, layout, kernel), for these settings
+            names = group.get("param_names")
+            names_key = tuple(names) if names else None
+            scale = group.get("dataset_size")
+            scale = 1.0 if scale is None else float(scale)
+            decay = float(group.get("weight_decay", 0.0))
+            for index, p in enumerate(group["params"]):
+                if p.grad is None:
+                    continue
+                if p.grad.is_sparse:
+                    raise ValueError("sparse gradients are not supported; use a dense nn.Embedding")
+                geometry = constraint_of(p) or UNCONSTRAINED
+                momentum = self.state[p].get("momentum") if scheme.momentum and p in self.state else None
+                generator = transaction.generator(p.device) if draws else None
+                if not draws:
+                    noise: tuple[Tensor, ...] = ()
+                elif id(p) in seen:  # listed twice: its own noise, and the reference kernel
+                    noise = tuple(torch.randn(p.shape, generator=generator, dtype=p.dtype, device=p.device)
+                                  for _ in range(draws))
+                else:
+                    noise = tuple(buffers.draw(p, j, generator) for j in range(draws))
+                grad, g_scale, g_decay = (p.grad, scale, decay) if own_force else (self.force(p, group), 1.0, 0.0)
+                key = (g_index, index, id(p), names_key)
+                label = labels.get(key)
+                if label is None:
+                    label = labels[key] = step_label(p, names, g_index, index)
+                inputs.append(StepInput(p, label, g_index, index, p.detach(), grad,
+                                        g_scale, g_decay, momentum, noise, geometry, settings, scheme))
+                if group_level or id(p) in seen:
+                    assignment.append(reference)
+                else:
+                    layout = layout_of(p, grad, momentum)
+                    entry = chosen.get(id(p))
+                    if (entry is None or entry[0] is not geometry or entry[3] != layout or entry[1] != p.dtype
+                            or entry[2] != p.device):
+                        kernel = next(k for k in kernels if k.supports(
+                            scheme, settings, geometry, p.dtype, p.device, layout))
+                        entry = chosen[id(p)] = (geometry, p.dtype, p.device, layout, kernel)
+                    assignment.append(entry[4])
+                seen.add(id(p))
+        return inputs, assignment
 
     def _take_step_with_retries(self) -> None:
         r""":meth:`_take_step`, retried with more substeps where a projection failed.
@@ -559,64 +603,3 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             self.retried_steps = getattr(self, "retried_steps", 0) + 1
             if self.last_info is not None:
                 self.last_info.retried_substeps = dict(factors)
-
-    def _reference_step(self) -> None:
-        """The plain path: one :meth:`_update` per parameter, then one commit."""
-        saved_generators = {k: g.get_state() for k, g in self._generators.items()}
-        pending: list[Pending] = []
-        for g_index, group in enumerate(self.param_groups):
-            lr = group["lr"]
-            if not lr >= 0:
-                raise ValueError(f"param group {g_index}: lr must be >= 0, got {lr!r}")
-            if lr == 0:  # e.g. a schedule that decays to zero: nothing moves
-                continue
-            names = group.get("param_names")
-            for index, p in enumerate(group["params"]):
-                if p.grad is None:
-                    continue
-                if p.grad.is_sparse:
-                    raise ValueError("sparse gradients are not supported; use a dense nn.Embedding")
-                label = step_label(p, names, g_index, index)
-                geometry = constraint_of(p) or UNCONSTRAINED
-                grad_ok = torch.isfinite(p.grad).all()
-                position, momentum, ok, iterations = self._update(p, self.force(p, group), group, geometry)
-                pending.append(Pending(p, label, g_index, index, geometry, grad_ok, ok, position,
-                                       momentum, iterations))
-        self._commit(pending, saved_generators)
-
-    def _commit(self, pending: list[Pending], saved_generators: dict[str, Tensor]) -> None:
-        if not pending:
-            self.last_info = StepInfo(())
-            return
-        flags = torch.stack([torch.stack([u.grad_ok, u.ok]) for u in pending]).cpu()  # one sync
-        if not bool(flags.all()):
-            for key, state in saved_generators.items():
-                self._generators[key].set_state(state)
-            for key in list(self._generators):
-                if key not in saved_generators:
-                    del self._generators[key]
-            flags_list = flags.tolist()
-            for u, (grad_ok, ok) in zip(pending, flags_list):  # non-finite gradients first: never retried
-                if not grad_ok:
-                    raise IntegrationError(
-                        f"non-finite gradient in {u.label} (param group {u.group}); nothing was "
-                        "changed. Check the loss for NaN/inf, or lower the step or the data scale.",
-                        parameter=u.label, reason="non-finite gradient", group=u.group)
-            for u, (grad_ok, ok) in zip(pending, flags_list):
-                if not ok:
-                    raise IntegrationError(
-                        f"the projection back onto the constraint set of {u.label} (param group "
-                        f"{u.group}, {u.geometry!r}) failed or gave a non-finite value after "
-                        f"{u.iterations} iterations; nothing was changed. Use a smaller step "
-                        "(a lower 'lr'), a lower temperature, projection='geodesic' or retry_substeps.",
-                        parameter=u.label, reason="projection failed", group=u.group)
-        infos = []
-        for u in pending:
-            u.param.copy_(u.position)
-            kinetic = None
-            if u.momentum is not None:
-                self.state[u.param]["momentum"] = u.momentum
-                kinetic = 0.5 * (u.momentum * u.momentum).sum()
-            infos.append(ParameterStepInfo(u.label, u.group, u.index, u.iterations, kinetic,
-                                           u.geometry.tangent_dof(u.param.shape)))
-        self.last_info = StepInfo(tuple(infos))

@@ -3,9 +3,9 @@ geodesic drifts) and overdamped (projected Euler-Maruyama)."""
 
 from __future__ import annotations
 
-from typing import Any, Callable, Iterable
+import warnings
+from typing import Any, Callable, Iterable, Mapping
 
-import torch
 from torch import Tensor
 
 from holonomic.dynamics.base import (
@@ -13,9 +13,9 @@ from holonomic.dynamics.base import (
     check_dataset_size,
     check_temperature,
 )
-from holonomic.dynamics.compiled import compiled_baoab_step
-from holonomic.dynamics.fast import fast_baoab_step
-from holonomic.dynamics.operators import BAOAB, Phase, Settings, overdamped_move, run_scheme
+from holonomic.dynamics.kernels import check_backend
+from holonomic.dynamics.operators import Settings
+from holonomic.dynamics.schemes import BAOAB, GEODESIC_BAOAB, OVERDAMPED, Scheme, as_scheme
 from holonomic.dynamics.settings import (
     check_lr,
     check_momentum,
@@ -23,12 +23,33 @@ from holonomic.dynamics.settings import (
     physics_group_to_sgd,
     sgd_settings,
 )
-from holonomic.geometry import Constraint, constraint_of
+from holonomic.geometry import constraint_of
 from holonomic.geometry.base import check_positive
 
 __all__ = ["Langevin", "OverdampedLangevin"]
 
 _PROJECTIONS = ("rattle", "geodesic")
+
+#: What the deprecated ``compiled=`` flag meant, as a backend.
+_COMPILED_TO_BACKEND = {None: "auto", True: "native", False: "eager"}
+
+
+def backend_from_compiled(compiled: Any, backend: str | None) -> str:
+    """The backend for a constructor given the deprecated ``compiled`` flag
+    (``None``/``True``/``False``: ``"auto"``/``"native"``/``"eager"``; warns)."""
+    if compiled is None:
+        return check_backend("auto" if backend is None else backend)
+    if backend is not None:
+        raise ValueError(f"give backend= (compiled= is deprecated), not both; got compiled={compiled!r} and "
+                         f"backend={backend!r}")
+    if not isinstance(compiled, bool):
+        raise ValueError(f"compiled (deprecated) must be None, True or False, got {compiled!r}; use backend= "
+                         "'auto', 'reference', 'eager' or 'native'")
+    new = _COMPILED_TO_BACKEND[compiled]
+    warnings.warn(f"compiled={compiled!r} is deprecated and will be removed in the next release; use "
+                  f"backend={new!r} (torch.compile is no longer used: the native C++ kernel and the eager "
+                  "kernels cover what it did)", DeprecationWarning, stacklevel=3)
+    return new
 
 
 def _check_weight_decay(value: Any) -> float:
@@ -137,21 +158,21 @@ class Langevin(HolonomicIntegrator):
         weight_decay: Gaussian prior precision for unconstrained parameters.
         substeps: split each A step into this many equal drifts (g-BAOAB
             with ``K`` RATTLE substeps when ``projection="rattle"``).
-        compiled: how the step of fixed-norm and unconstrained parameters
-            runs (see :mod:`holonomic.dynamics.compiled`; same arithmetic
-            everywhere, tested against the plain path).  ``None`` (default):
-            on the CPU, in float32 or float64, one call of a C++ kernel with
-            about the memory traffic of ``torch.optim.SGD``, built once with
-            the system compiler (about two seconds, then cached on disk;
-            :mod:`holonomic.dynamics.native`), and the eager fast path
-            everywhere else or when no compiler is found.  ``True``: the same
-            kernel on the CPU, and a ``torch.compile`` function elsewhere
-            or where the kernel cannot be built (tens of seconds to compile;
-            each failure is warned about once: a failed build falls back to
-            torch.compile, a failed compile to the eager path).  ``False``: always
-            the eager fast path.  A step with any parameter the kernels do
-            not cover (orthonormal, geodesic or substepped groups, ...) runs
-            eagerly as a whole.
+        backend: which kernels compute the step, chosen per parameter
+            (:mod:`holonomic.dynamics.kernels`; every kernel is tested against
+            the reference).  ``"auto"`` (default): the native C++ kernel for
+            fixed-norm and free parameters on the CPU in float32/float64
+            (built once with the system compiler; silently skipped where it
+            cannot be built), the closed-form kernel for square orthonormal
+            parameters, the fused eager kernel for fixed-norm and free
+            parameters elsewhere, and the reference kernel for the rest.
+            ``"native"``: the same, warning once if the C++ kernel cannot be
+            built.  ``"eager"``: no C++ kernel.  ``"reference"``: the plain
+            operators for every parameter.  ``last_info.kernels`` says which
+            kernel took each parameter's step.
+        compiled: deprecated (one release): ``None``/``True``/``False`` mean
+            ``backend="auto"``/``"native"``/``"eager"``, with a
+            ``DeprecationWarning``.
         retry_substeps: what a step does when a projection has no solution
             (SHAKE finds no point of the set along the normal: the drift
             ``(h/2) |P|`` of a row exceeds its radius, typically at a large
@@ -170,7 +191,8 @@ class Langevin(HolonomicIntegrator):
             (saved in ``state_dict``) counts the retried steps.  If ``k = K``
             still fails, the step raises :class:`IntegrationError` saying so,
             with nothing changed.  Non-finite gradients are never retried.
-            A retried step runs on the eager path.
+        group_defaults: further param-group defaults of a subclass (e.g. the
+            thermostat settings of :class:`holonomic.AdaptiveLangevin`).
 
     Raises:
         ValueError: at construction, for a non-positive or NaN lr or step,
@@ -194,7 +216,9 @@ class Langevin(HolonomicIntegrator):
         Andersen, J. Comput. Phys. 52 (1983) 24-34.
     """
 
-    scheme: tuple[tuple[str, float], ...] = BAOAB
+    #: A scheme table for every group (``None``: BAOAB, or g-BAOAB for groups
+    #: with ``projection="geodesic"``); subclasses may set another table.
+    scheme: Scheme | tuple[tuple[str, float], ...] | None = None
 
     def __init__(
         self,
@@ -210,18 +234,23 @@ class Langevin(HolonomicIntegrator):
         dataset_size: float | None = None,
         weight_decay: float = 0.0,
         substeps: int = 1,
+        backend: str | None = None,
         compiled: bool | None = None,
         retry_substeps: int | None = None,
+        group_defaults: Mapping[str, Any] | None = None,
     ) -> None:
-        if compiled is not None and not isinstance(compiled, bool):
-            raise ValueError(f"compiled must be None (automatic), True or False, got {compiled!r}")
+        self.backend = backend_from_compiled(compiled, backend)
         lr, momentum = sgd_settings(lr, momentum, step, friction)
         defaults = dict(lr=lr, momentum=momentum, temperature=temperature,
                         projection=projection, dataset_size=dataset_size, weight_decay=weight_decay,
-                        substeps=substeps, momentum_scale=None)
+                        substeps=substeps, momentum_scale=None, **(group_defaults or {}))
         self._validate_group(defaults)
         super().__init__(params, defaults, seed=seed, retry_substeps=retry_substeps)
-        self.compiled = compiled
+
+    @property
+    def compiled(self) -> bool | None:
+        """Deprecated: the ``compiled`` flag that maps to :attr:`backend`."""
+        return {"auto": None, "native": True, "eager": False}.get(self.backend)
 
     @classmethod
     def from_sgd(
@@ -328,41 +357,26 @@ class Langevin(HolonomicIntegrator):
         group["momentum_scale"] = scale
         return group, old, saved
 
+    def scheme_for(self, group: dict[str, Any]) -> Scheme:
+        """BAOAB, or g-BAOAB for ``projection="geodesic"`` (or the class's own table)."""
+        if self.scheme is not None:
+            return as_scheme(self.scheme)
+        return GEODESIC_BAOAB if group["projection"] == "geodesic" else BAOAB
+
+    def settings_for(self, group: dict[str, Any]) -> Settings:
+        h, gamma = integrator_step_and_friction(group)
+        return Settings(step=h, friction=gamma, temperature=group["temperature"],
+                        projection=group["projection"], substeps=group["substeps"])
+
     def _take_step(self) -> None:
-        """The compiled path (unless ``compiled=False``), else the fast path
-        (:mod:`holonomic.dynamics.fast`) for the BAOAB scheme, falling back to
-        the plain path when a check fails."""
+        """Follow changed settings (momentum rescaling), then the transaction; a
+        failed step undoes the rescaling too."""
         restore = self._follow_settings()
         try:
-            if self._reference or self.scheme is not BAOAB or type(self)._update is not Langevin._update:
-                self._reference_step()
-            elif self._use_compiled() and compiled_baoab_step(self):
-                return
-            elif not fast_baoab_step(self):
-                self._reference_step()
+            super()._take_step()
         except BaseException:
             restore()  # a failed step changes nothing, the momenta and their settings included
             raise
-
-    def _use_compiled(self) -> bool:
-        """Not switched off, not failed to compile, and ``force`` not
-        overridden (the compiled kernels compute the force themselves)."""
-        return (getattr(self, "compiled", None) is not False and not self.__dict__.get("_compile_failed", False)
-                and type(self).force is HolonomicIntegrator.force)
-
-    def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
-        state = self.state[p]
-        momentum = state.get("momentum")
-        if momentum is None:
-            momentum = torch.zeros_like(p)
-        h, gamma = integrator_step_and_friction(group)
-        settings = Settings(step=h, friction=gamma, temperature=group["temperature"],
-                            projection=group["projection"], substeps=group["substeps"])
-        phase = Phase(w=p.detach(), p=momentum, ok=torch.isfinite(force).all())
-        run_scheme(self.scheme, phase, force=force, geometry=geometry, settings=settings,
-                   generator=self.generator(p.device) if settings.temperature > 0 else None)
-        ok = phase.ok & torch.isfinite(phase.p).all()
-        return phase.w, phase.p, ok, phase.iterations
 
 
 class OverdampedLangevin(HolonomicIntegrator):
@@ -452,10 +466,10 @@ class OverdampedLangevin(HolonomicIntegrator):
         if isinstance(substeps, bool) or not isinstance(substeps, int) or substeps < 1:
             raise ValueError(f"substeps must be a positive integer, got {substeps!r}")
 
-    def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
-        temperature = group["temperature"]
+    def scheme_for(self, group: dict[str, Any]) -> Scheme:
+        return OVERDAMPED
+
+    def settings_for(self, group: dict[str, Any]) -> Settings:
         h, _ = integrator_step_and_friction(group)  # h = lr
-        phase = overdamped_move(p.detach(), force, geometry=geometry, step=h,
-                                temperature=temperature, substeps=group.get("substeps", 1),
-                                generator=self.generator(p.device) if temperature > 0 else None)
-        return phase.w, None, phase.ok & torch.isfinite(force).all(), phase.iterations
+        return Settings(step=h, friction=float("inf"), temperature=group["temperature"],
+                        substeps=group.get("substeps", 1))

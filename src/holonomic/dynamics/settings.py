@@ -94,7 +94,7 @@ def integrator_step_and_friction(group: Mapping[str, Any]) -> tuple[float, float
     """The integrator's ``(h, gamma)`` of a param group, from its ``lr`` and ``momentum``.
 
     Every reader of the integrator step and friction goes through this function (the
-    plain, fast, compiled and native paths, the adaptive sampler, the audit).  A group
+    integrators' ``settings_for``, the bench, the audit).  A group
     without ``"momentum"`` (:class:`holonomic.OverdampedLangevin`) gives ``(lr, inf)``.
     Raises ``ValueError`` naming ``lr`` or ``momentum`` for values out of range (a
     scheduler or a hand edit of the group).

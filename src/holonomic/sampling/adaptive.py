@@ -39,48 +39,31 @@ from typing import Any, Callable, Iterable
 import torch
 from torch import Tensor
 
-from holonomic.dynamics.base import HolonomicIntegrator
 from holonomic.dynamics.langevin import Langevin
-from holonomic.dynamics.operators import Phase, Settings, run_scheme
-from holonomic.dynamics.settings import integrator_step_and_friction, sgd_settings
-from holonomic.geometry import UNCONSTRAINED, Constraint, constraint_of
+from holonomic.dynamics import operators
+from holonomic.dynamics.operators import Phase, Settings
+from holonomic.dynamics.schemes import ADAPTIVE_FRICTION, Scheme
+from holonomic.dynamics.settings import integrator_step_and_friction
+from holonomic.geometry import Constraint
 from holonomic.geometry.base import check_positive
 
 __all__ = ["AdaptiveLangevin", "adaptive_thermostat", "update_thermostat_friction"]
-
-#: Opening part of a step: fused kick and first half drift (core operators).
-_KICK_DRIFT: tuple[tuple[str, float], ...] = (("kick", 1.0), ("drift", 0.5))
-#: Closing half drift.
-_DRIFT: tuple[tuple[str, float], ...] = (("drift", 0.5),)
 
 
 def adaptive_thermostat(phase: Phase, *, xi: Tensor, noise_friction: float, temperature: float,
                         step: float, geometry: Constraint,
                         generator: torch.Generator | None) -> None:
-    r"""O step with friction :math:`\xi` and injected noise of fixed strength :math:`2AT`.
-
-    Exact Ornstein-Uhlenbeck update for time ``h`` (any sign of :math:`\xi`)::
+    r"""O step with friction :math:`\xi` and injected noise of fixed strength :math:`2AT`
+    (the scheme's ``adaptive_thermostat`` operator, :mod:`holonomic.dynamics.operators`,
+    with its noise drawn from ``generator``)::
 
         P <- Pi_W ( e^{-xi h} P + sqrt(2 A T (1 - e^{-2 xi h}) / (2 xi)) eta ),  eta ~ N(0, I)
-
-    (the variance tends to ``2 A T h`` as ``xi -> 0``). Unlike the core's thermostat the
-    noise does *not* scale with the friction: the friction adapts, the injected noise stays.
-    ``xi`` is a 0-d float64 tensor, so no host synchronisation is needed.
     """
-    xh = xi * step
-    decay = torch.exp(-xh).to(phase.p.device, phase.p.dtype)
-    if temperature == 0.0 or noise_friction == 0.0:
-        phase.p = phase.p * decay
-        return
-    small = xh.abs() < 1e-8
-    # (1 - e^{-2 xi h}) / (2 xi), with its limit h at xi = 0
-    factor = torch.where(small, torch.full_like(xh, step),
-                         -torch.expm1(-2.0 * xh) / (2.0 * torch.where(small, torch.ones_like(xi), xi)))
-    scale = torch.sqrt(2.0 * noise_friction * temperature * factor).to(phase.p.device,
-                                                                       phase.p.dtype)
-    noise = torch.randn(phase.p.shape, generator=generator, dtype=phase.p.dtype,
-                        device=phase.p.device)
-    phase.p = geometry.tangent(phase.w, phase.p * decay + scale * noise)
+    settings = Settings(step=step, friction=noise_friction, temperature=temperature)
+    operators.adaptive_thermostat(phase, 1.0, force=phase.p, geometry=geometry, settings=settings,
+                noise=lambda: torch.randn(phase.p.shape, generator=generator, dtype=phase.p.dtype,
+                                          device=phase.p.device),
+                state={"friction": xi})
 
 
 def update_thermostat_friction(xi: Tensor, momenta: list[Tensor], *, dof: int, temperature: float,
@@ -89,8 +72,11 @@ def update_thermostat_friction(xi: Tensor, momenta: list[Tensor], *, dof: int, t
 
     Returns a new 0-d float64 tensor (``xi`` is not modified).
     """
-    twice_kinetic = sum((p.to(torch.float64) ** 2).sum().to(xi.device) for p in momenta)
-    return xi + (duration / thermostat_mass) * (twice_kinetic / (dof * temperature) - 1.0)
+    state = {"friction": xi}
+    phases = [Phase(w=p, p=p, ok=torch.ones((), dtype=torch.bool)) for p in momenta]
+    operators.friction_update(phases, 1.0, dof=dof, settings=Settings(step=duration, temperature=temperature,
+                                                            thermostat_mass=thermostat_mass), state=state)
+    return state["friction"]
 
 
 class AdaptiveLangevin(Langevin):
@@ -185,18 +171,13 @@ class AdaptiveLangevin(Langevin):
         weight_decay: float = 0.0,
         substeps: int = 1,
         retry_substeps: int | None = None,
+        backend: str | None = None,
     ) -> None:
-        lr, momentum = sgd_settings(lr, momentum, step, friction)
-        defaults = dict(lr=lr, momentum=momentum, temperature=temperature,
-                        thermostat_mass=thermostat_mass, adaptive=adaptive,
-                        projection=projection, dataset_size=dataset_size,
-                        weight_decay=weight_decay, substeps=substeps)
-        self._validate_group(defaults)
-        self._xi: list[Tensor] = []
-        self._scratch: dict[str, Any] | None = None
-        # Langevin.__init__ would validate defaults without the thermostat keys; the
-        # bookkeeping lives in HolonomicIntegrator.
-        HolonomicIntegrator.__init__(self, params, defaults, seed=seed, retry_substeps=retry_substeps)
+        super().__init__(params, lr, momentum, step=step, friction=friction, temperature=temperature,
+                         projection=projection, seed=seed, dataset_size=dataset_size,
+                         weight_decay=weight_decay, substeps=substeps, retry_substeps=retry_substeps,
+                         backend=backend,
+                         group_defaults=dict(thermostat_mass=thermostat_mass, adaptive=adaptive))
 
     # -- groups ------------------------------------------------------------------------
     def _validate_group(self, group: dict[str, Any]) -> None:
@@ -213,16 +194,25 @@ class AdaptiveLangevin(Langevin):
                              "friction and must be finite), got 0.0 (or friction=inf)")
         group["thermostat_mass"] = check_positive("thermostat_mass", group["thermostat_mass"])
 
-    def add_param_group(self, param_group: dict[str, Any]) -> None:
-        super().add_param_group(param_group)
-        group = self.param_groups[-1]
+    def _initial_group_state(self, group: dict[str, Any]) -> dict[str, Tensor]:
+        r""":math:`\xi` starts at the friction ``A`` of the group's settings."""
         device = group["params"][0].device if group["params"] else torch.device("cpu")
         _, friction = integrator_step_and_friction(group)
-        self._xi.append(torch.tensor(friction, dtype=torch.float64, device=device))
+        return {"friction": torch.tensor(friction, dtype=torch.float64, device=device)}
+
+    def scheme_for(self, group: dict[str, Any]) -> Scheme:
+        """The adaptive-friction table (BADODAB) for every group."""
+        return ADAPTIVE_FRICTION
+
+    def settings_for(self, group: dict[str, Any]) -> Settings:
+        h, friction = integrator_step_and_friction(group)
+        return Settings(step=h, friction=friction, temperature=group["temperature"],
+                        projection=group["projection"], substeps=group["substeps"],
+                        thermostat_mass=group["thermostat_mass"], adaptive=group["adaptive"])
 
     def thermostat_friction(self) -> list[float]:
-        """Current thermostat friction :math:`\\xi` of each param group (host sync)."""
-        return [float(x) for x in self._xi]
+        r"""Current thermostat friction :math:`\xi` of each param group (host sync)."""
+        return [float(s["friction"]) for s in self.group_states]
 
     def _follow_settings(self) -> Callable[[], None]:
         """No rescaling of the momenta when lr or momentum change (class docstring)."""
@@ -232,7 +222,7 @@ class AdaptiveLangevin(Langevin):
     def state_dict(self) -> dict[str, Any]:
         """Core state dict plus ``"thermostat_friction"``: one 0-d tensor per group."""
         sd = super().state_dict()
-        sd["thermostat_friction"] = [x.detach().cpu().clone() for x in self._xi]
+        sd["thermostat_friction"] = [s["friction"].detach().cpu().clone() for s in self.group_states]
         return sd
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
@@ -244,100 +234,5 @@ class AdaptiveLangevin(Langevin):
                              f"param group ({len(self.param_groups)}); was it saved by "
                              "AdaptiveLangevin?")
         super().load_state_dict(state_dict)
-        self._xi = [torch.as_tensor(x, dtype=torch.float64).to(old.device).clone()
-                    for x, old in zip(frictions, self._xi)]
-
-    # -- stepping ----------------------------------------------------------------------
-    # The base class's step() runs the per-parameter hook _update and commits all updates
-    # transactionally. The thermostat couples the parameters of a group (it needs their
-    # summed kinetic energy between the first drift and the O step), so step() first runs
-    # the opening B A D of every group (_open_step: it only computes, nothing is written),
-    # then the base step() calls _update for O and the closing A of each parameter; the
-    # closing D is applied only once the base class has committed.
-
-    def _open_step(self) -> dict[str, Any]:
-        """B, A and the first D for every group; returns scratch data (nothing written)."""
-        phases: dict[Tensor, tuple[int, Phase]] = {}
-        xi_half: list[Tensor | None] = [None] * len(self.param_groups)
-        dof = [0] * len(self.param_groups)
-        for g_index, group in enumerate(self.param_groups):
-            if not group["lr"] > 0:  # lr == 0 skips the group; lr < 0 is reported by the base step()
-                continue
-            h = self._settings(group).step
-            if group["adaptive"] and not group["temperature"] > 0:
-                raise ValueError(f"param group {g_index}: AdaptiveLangevin needs temperature "
-                                 f"> 0, got {group['temperature']!r}; use Langevin for T = 0")
-            settings = self._settings(group)
-            members = [p for p in group["params"]
-                       if p.grad is not None and not p.grad.is_sparse]
-            if not members:
-                continue
-            for p in members:
-                geometry = constraint_of(p) or UNCONSTRAINED
-                force = self.force(p, group)
-                momentum = self.state[p].get("momentum")
-                if momentum is None:
-                    momentum = torch.zeros_like(p)
-                phase = Phase(w=p.detach(), p=momentum, ok=torch.isfinite(force).all())
-                run_scheme(_KICK_DRIFT, phase, force=force, geometry=geometry,
-                           settings=settings, generator=None)
-                phases[p] = (g_index, phase)
-                dof[g_index] += geometry.tangent_dof(p.shape)
-            if not group["adaptive"]:  # fixed friction A, following lr and momentum
-                self._xi[g_index] = torch.full_like(self._xi[g_index], settings.friction)
-                xi_half[g_index] = self._xi[g_index]
-                continue
-            xi_half[g_index] = update_thermostat_friction(
-                self._xi[g_index], [phases[p][1].p for p in members], dof=dof[g_index],
-                temperature=settings.temperature, thermostat_mass=group["thermostat_mass"],
-                duration=0.5 * h)
-        return {"phases": phases, "xi_half": xi_half, "dof": dof,
-                "kinetic": [[] for _ in self.param_groups]}
-
-    @staticmethod
-    def _settings(group: dict[str, Any]) -> Settings:
-        h, friction = integrator_step_and_friction(group)
-        return Settings(step=h, friction=friction,
-                        temperature=group["temperature"], projection=group["projection"],
-                        substeps=group["substeps"])
-
-    def _update(self, p: Tensor, force: Tensor, group: dict[str, Any], geometry: Constraint):
-        """O and the closing A for one parameter (B and A were run by _open_step)."""
-        scratch = self._scratch
-        if scratch is None or p not in scratch["phases"]:
-            raise RuntimeError("AdaptiveLangevin._update is only called from step()")
-        g_index, phase = scratch["phases"][p]
-        settings = self._settings(group)
-        xi = scratch["xi_half"][g_index]
-        adaptive_thermostat(phase, xi=xi, noise_friction=settings.friction,
-                            temperature=settings.temperature, step=settings.step,
-                            geometry=geometry, generator=self.generator(p.device))
-        scratch["kinetic"][g_index].append(phase.p)
-        run_scheme(_DRIFT, phase, force=force, geometry=geometry, settings=settings,
-                   generator=None)
-        ok = phase.ok & torch.isfinite(phase.p).all() & torch.isfinite(xi)
-        return phase.w, phase.p, ok, phase.iterations
-
-    def _take_step(self) -> None:
-        """The opening B A D of every group, then O and the closing A per parameter
-        (one attempt: a retry with more substeps re-runs both), then, after the commit,
-        the closing D of every group. ``step()`` itself is the base class's, so torch's
-        step hooks fire once per step.
-
-        Raises:
-            IntegrationError: non-finite gradient or failed projection; nothing changed
-                (weights, momenta, generator states, thermostat frictions).
-        """
-        self._scratch = self._open_step()
-        try:
-            super()._take_step()  # O, A per parameter; commits, or raises having changed nothing
-            scratch = self._scratch
-        finally:
-            self._scratch = None
-        for g_index, group in enumerate(self.param_groups):  # closing D, after the commit
-            if scratch["kinetic"][g_index] and group["adaptive"]:
-                self._xi[g_index] = update_thermostat_friction(
-                    scratch["xi_half"][g_index], scratch["kinetic"][g_index],
-                    dof=scratch["dof"][g_index], temperature=group["temperature"],
-                    thermostat_mass=group["thermostat_mass"],
-                    duration=0.5 * integrator_step_and_friction(group)[0])
+        for x, s in zip(frictions, self.group_states):
+            s["friction"] = torch.as_tensor(x, dtype=torch.float64).to(s["friction"].device).clone()

@@ -1,19 +1,20 @@
 // One BAOAB-RATTLE step for fixed-norm and unconstrained parameters on the CPU,
 // written in place only if the whole step is valid.
 //
-// The arithmetic is that of holonomic/dynamics/fast.py (sphere_baoab_coefficients)
-// and compiled.py (baoab_kernel); see their docstrings for the derivation.
-// Built at first use by holonomic/dynamics/native.py with the system C++ compiler
-// and loaded with ctypes: plain C ABI, no Python or torch headers.
+// The arithmetic is that of holonomic/dynamics/kernels/fused.py
+// (sphere_baoab_coefficients); docs/kernels.md gives the derivation.
+// Built at first use by holonomic/dynamics/kernels/native.py with the system C++
+// compiler and loaded with ctypes: plain C ABI, no Python or torch headers.
 //
-// Two passes over memory, in one OpenMP parallel region:
-//   1. per constrained vector: the Gram entries of w, q = m - h scale g (and the
-//      noise x) accumulated in double, the closed-form coefficients (double),
-//      the kinetic energy and a validity flag; per chunk of an unconstrained
-//      parameter: its new values computed, checked and their energy summed;
-//   2. only if every flag holds: the new position and momentum written.
-// If a flag fails nothing is written and the function returns 0; -1 if its
-// scratch could not be allocated (nothing written either).
+// Two calls, two passes over memory (each one OpenMP parallel region):
+//   check: per constrained vector the Gram entries of w, q = m - h scale g (and
+//      the noise x) accumulated in double, the closed-form coefficients (double,
+//      kept in the caller's coef array), the kinetic energy and a validity flag;
+//      per chunk of an unconstrained parameter its new values computed, checked
+//      and their energy summed.  Writes nothing but coef, ok and kinetic.
+//   write: called by the step transaction only once every flag of the step
+//      holds: the new position and momentum of each parameter whose ok is 1,
+//      written in place.
 
 #include <cmath>
 #include <cstdint>
@@ -116,10 +117,10 @@ struct Step {
   const Param* params;
   int64_t n_params;
   std::vector<Item> items;
-  std::vector<double> coef;    // 6 per item (sphere rows)
+  double* coef;                // 6 per item (sphere rows), owned by the caller
   std::vector<double> energy;  // per item: squared norm of the new momentum
 
-  Step(const Param* ps, int64_t n) : params(ps), n_params(n) {
+  Step(const Param* ps, int64_t n, double* coef_out) : params(ps), n_params(n), coef(coef_out) {
     for (int64_t i = 0; i < n; ++i) {
       const Param& p = ps[i];
       if (p.sphere) {
@@ -128,7 +129,6 @@ struct Step {
         for (int64_t b = 0; b < p.len; b += kChunk) items.push_back({i, 0, b, b + kChunk < p.len ? b + kChunk : p.len});
       }
     }
-    coef.assign(6 * items.size(), 0.0);
     energy.assign(items.size(), 0.0);
   }
 
@@ -245,30 +245,49 @@ struct Step {
     }
   }
 
-  // Returns 1 (written) or 0 (invalid, nothing written); kinetic[i] = |p_i|^2 / 2.
-  int run(double* kinetic, int64_t threads, int64_t parallel) {
+  // Fills coef, ok[i] (1: parameter i can be written) and kinetic[i] = |p_i|^2 / 2;
+  // returns 1 when every parameter is ok.
+  int check_all(int8_t* ok, double* kinetic, int64_t threads, int64_t parallel) {
     const int64_t n = static_cast<int64_t>(items.size());
-    int ok = 1;
-#pragma omp parallel if (parallel) num_threads(static_cast<int>(threads > 0 ? threads : 1))
-    {
-#pragma omp for schedule(static) reduction(&& : ok)
-      for (int64_t k = 0; k < n; ++k) ok = check(k) && ok;
-      if (ok) {
-#pragma omp for schedule(static)
-        for (int64_t k = 0; k < n; ++k) write(k);
-      }
+    std::vector<int8_t> item_ok(items.size(), 0);
+#pragma omp parallel for schedule(static) if (parallel) num_threads(static_cast<int>(threads > 0 ? threads : 1))
+    for (int64_t k = 0; k < n; ++k) item_ok[k] = check(k) ? 1 : 0;
+    for (int64_t i = 0; i < n_params; ++i) kinetic[i] = 0, ok[i] = 1;
+    for (int64_t k = 0; k < n; ++k) {
+      kinetic[items[k].param] += 0.5 * energy[k];
+      if (!item_ok[k]) ok[items[k].param] = 0;
     }
-    for (int64_t i = 0; i < n_params; ++i) kinetic[i] = 0;
-    for (int64_t k = 0; k < n; ++k) kinetic[items[k].param] += 0.5 * energy[k];
-    return ok;
+    int all = 1;
+    for (int64_t i = 0; i < n_params; ++i) all = all && ok[i];
+    return all;
+  }
+
+  // Writes the parameters whose ok is 1 (coef from check_all).
+  void write_all(const int8_t* ok, int64_t threads, int64_t parallel) {
+    const int64_t n = static_cast<int64_t>(items.size());
+#pragma omp parallel for schedule(static) if (parallel) num_threads(static_cast<int>(threads > 0 ? threads : 1))
+    for (int64_t k = 0; k < n; ++k) {
+      if (ok[items[k].param]) write(k);
+    }
   }
 };
 
 template <typename T>
-int take_step(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
+int check_step(const Param* params, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
+               int64_t parallel) {
   try {
-    return Step<T>(params, n).run(kinetic, threads, parallel);
-  } catch (...) {  // the work list could not be allocated: nothing was written
+    return Step<T>(params, n, coef).check_all(ok, kinetic, threads, parallel);
+  } catch (...) {  // the work list could not be allocated: nothing was computed
+    return -1;
+  }
+}
+
+template <typename T>
+int write_step(const Param* params, int64_t n, double* coef, const int8_t* ok, int64_t threads, int64_t parallel) {
+  try {
+    Step<T>(params, n, coef).write_all(ok, threads, parallel);
+    return 1;
+  } catch (...) {
     return -1;
   }
 }
@@ -277,16 +296,35 @@ int take_step(const Param* params, int64_t n, double* kinetic, int64_t threads, 
 
 extern "C" {
 
-int holonomic_abi_version() { return 1; }
+int holonomic_abi_version() { return 2; }
 
 int64_t holonomic_param_size() { return static_cast<int64_t>(sizeof(Param)); }
 
-int holonomic_baoab_float(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
-  return take_step<float>(params, n, kinetic, threads, parallel);
+// Work items (sphere rows and chunks of free parameters): coef needs 6 doubles per item.
+int64_t holonomic_items(const Param* params, int64_t n) {
+  int64_t count = 0;
+  for (int64_t i = 0; i < n; ++i) count += params[i].sphere ? params[i].rows : (params[i].len + kChunk - 1) / kChunk;
+  return count;
 }
 
-int holonomic_baoab_double(const Param* params, int64_t n, double* kinetic, int64_t threads, int64_t parallel) {
-  return take_step<double>(params, n, kinetic, threads, parallel);
+int holonomic_check_float(const Param* p, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
+                          int64_t parallel) {
+  return check_step<float>(p, n, coef, ok, kinetic, threads, parallel);
+}
+
+int holonomic_check_double(const Param* p, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
+                           int64_t parallel) {
+  return check_step<double>(p, n, coef, ok, kinetic, threads, parallel);
+}
+
+int holonomic_write_float(const Param* p, int64_t n, double* coef, const int8_t* ok, int64_t threads,
+                          int64_t parallel) {
+  return write_step<float>(p, n, coef, ok, threads, parallel);
+}
+
+int holonomic_write_double(const Param* p, int64_t n, double* coef, const int8_t* ok, int64_t threads,
+                           int64_t parallel) {
+  return write_step<double>(p, n, coef, ok, threads, parallel);
 }
 
 }  // extern "C"

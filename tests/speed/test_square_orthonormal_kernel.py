@@ -1,9 +1,9 @@
-"""Parity of the closed-form square orthonormal fast path
-(holonomic.dynamics.fast_orthonormal) with the plain iterative SHAKE path, in
-float64, plus its failure behaviour and its pieces against outside references.
+"""The closed-form square orthonormal kernel (holonomic.dynamics.kernels.square_orthonormal):
+batches of several shapes and scales against the reference kernel (the iterative SHAKE
+path) in float64, its failure behaviour, and its pieces against outside references.
 
-The reference is the plain path of the same class (``opt._reference = True``).
-No timing assertions here: speed is measured by ``python -m holonomic.bench``.
+The generic registry tests (tests/core, kernel axis) cover one square parameter with the
+kernel pinned.  No timing assertions here: speed is measured by ``python -m holonomic.bench``.
 """
 
 import copy
@@ -16,8 +16,8 @@ import torch
 from torch import nn
 
 import holonomic as hn
-import holonomic.dynamics.fast_orthonormal as fo
-from holonomic.dynamics.fast_orthonormal import (
+import holonomic.dynamics.kernels.square_orthonormal as fo
+from holonomic.dynamics.kernels.square_orthonormal import (
     _block_size,
     _combined_series,
     _drift_factor,
@@ -28,9 +28,39 @@ from holonomic.dynamics.fast_orthonormal import (
 from holonomic.geometry import default_tolerance
 from holonomic.geometry.stiefel import stiefel_shake, stiefel_tangent
 
-from .test_fast_path_parity import _data, _run, _snapshot, assert_same_run
-
 TOL = 1e-11  # float64 roundoff over a few dozen steps (common practice, no source)
+
+
+def _data():
+    g = torch.Generator().manual_seed(1)
+    return torch.randn(24, 7, generator=g, dtype=torch.float64), torch.randn(24, 3, generator=g, dtype=torch.float64)
+
+
+def _run(net, opt, steps, data):
+    x, y = data
+    for _ in range(steps):
+        opt.zero_grad()
+        ((net(x) - y) ** 2).mean().backward()
+        opt.step()
+
+
+def _snapshot(net, opt):
+    return copy.deepcopy((net.state_dict(), opt.state_dict()))
+
+
+def assert_same_run(fast_net, fast, ref_net, ref, same_iterations=lambda a, b: a == b):
+    """Weights, momenta, generator states and step info of the two runs agree to float64 roundoff."""
+    for a, b in zip(fast_net.parameters(), ref_net.parameters()):
+        assert torch.allclose(a, b, rtol=0, atol=TOL)
+        assert torch.allclose(fast.state[a]["momentum"], ref.state[b]["momentum"], rtol=0, atol=TOL)
+    # same noise stream: the generators advanced identically
+    assert all(torch.equal(fast._generators[k].get_state(), ref._generators[k].get_state())
+               for k in ref._generators)
+    for a, b in zip(fast.last_info.parameters, ref.last_info.parameters):
+        assert (a.label, a.group, a.index, a.tangent_dof) == (b.label, b.group, b.index, b.tangent_dof)
+        assert same_iterations(a.projection_iterations, b.projection_iterations)
+        assert abs(float(a.kinetic_energy) - float(b.kinetic_energy)) <= TOL * max(1.0, float(b.kinetic_energy))
+    assert max(hn.residuals(fast_net).values()) < 1e-13
 
 
 def _net(seed=0):
@@ -46,7 +76,7 @@ def _net(seed=0):
     hn.constrain(net[0], weight=hn.FixedNorm(1.5, over="rows"))
     hn.constrain(net[2], weight=hn.Orthonormal(over="rows", scale=0.8))  # two of one shape: batched
     hn.constrain(net[4], weight=hn.Orthonormal(over="columns"))
-    hn.constrain(net[6], weight=hn.Orthonormal(over="rows"))  # rectangular: plain path inside the fast one
+    hn.constrain(net[6], weight=hn.Orthonormal(over="rows"))  # rectangular: the reference kernel, same step
     net[8].weight.data *= 1.3
     hn.constrain(net[8], weight=hn.Orthonormal(over="columns", scale=1.3))
     return net
@@ -60,13 +90,12 @@ def _groups(net, temperature, friction):
 
 @pytest.mark.parametrize("temperature", [0.0, 0.4])
 @pytest.mark.parametrize("friction", [1.0, math.inf])
-def test_square_orthonormal_fast_path_matches_reference(temperature, friction):
+def test_square_orthonormal_batches_match_the_reference_kernel(temperature, friction):
     fast_net = _net()
     ref_net = copy.deepcopy(fast_net)
     kw = dict(step=0.2, friction=friction, temperature=temperature, seed=3)
-    fast = hn.Langevin(_groups(fast_net, temperature, friction), **kw)
-    ref = hn.Langevin(_groups(ref_net, temperature, friction), **kw)
-    ref._reference = True
+    fast = hn.Langevin(_groups(fast_net, temperature, friction), backend="eager", **kw)
+    ref = hn.Langevin(_groups(ref_net, temperature, friction), backend="reference", **kw)
     data = _data()
     _run(fast_net, fast, 30, data)
     _run(ref_net, ref, 30, data)
@@ -113,7 +142,7 @@ def test_series_pieces_against_outside_values():
     assert series_degree(sqrt_series(), 0.3, 1e-16) is None
 
 
-def test_square_fast_path_failure_changes_nothing():
+def test_square_kernel_failure_changes_nothing():
     layer = nn.Linear(4, 4, bias=False).double()
     with torch.no_grad():
         q, _ = torch.linalg.qr(torch.randn(4, 4, generator=torch.Generator().manual_seed(0), dtype=torch.float64))
@@ -135,7 +164,7 @@ def test_square_fast_path_failure_changes_nothing():
     assert torch.equal(before[0]["weight"], layer.weight.detach())
 
 
-def test_square_fast_path_float32_stays_on_the_set_and_near_reference():
+def test_square_kernel_float32_stays_on_the_set_and_near_reference():
     # float32: the drift check rarely fires, so this covers the uncorrected branch; the
     # constraint must hold to the dtype tolerance (8 eps, geometry.base.default_tolerance)
     g = torch.Generator().manual_seed(5)
@@ -146,8 +175,8 @@ def test_square_fast_path_float32_stays_on_the_set_and_near_reference():
             layer.weight.copy_(torch.linalg.qr(torch.randn(32, 32, generator=torch.Generator().manual_seed(6)))[0])
         hn.constrain(layer, weight=hn.Orthonormal())
         nets.append(layer)
-    opts = [hn.Langevin(n.parameters(), step=0.1, temperature=0.01, seed=1) for n in nets]
-    opts[1]._reference = True
+    opts = [hn.Langevin(n.parameters(), step=0.1, temperature=0.01, seed=1, backend=b)
+            for n, b in zip(nets, ("eager", "reference"))]
     target = torch.randn(32, 32, generator=g)
     for _ in range(200):
         for layer, opt in zip(nets, opts):
@@ -319,4 +348,4 @@ def test_cold_step_float32_momentum_stays_tangent(lr):
         worst = max(worst, float(geometry.tangent_residual(layer.weight.detach(), opt.state[layer.weight]["momentum"])))
     assert worst <= default_tolerance(torch.float32)
     assert hn.residuals(layer)["weight"] <= default_tolerance(torch.float32)
-    assert degrees  # the fast path ran
+    assert {k for _, k in opt.last_info.kernels} == {"square-orthonormal"} and degrees

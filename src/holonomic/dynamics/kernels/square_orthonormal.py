@@ -1,125 +1,44 @@
-r"""Fast path of the BAOAB step for square orthonormal parameters (``O(n)``).
+r"""Closed-form kernel: BAOAB-RATTLE for square orthonormal parameters (``O(n)``).
 
-The plain path (:func:`holonomic.dynamics.operators.run_scheme` with
-:func:`holonomic.geometry.stiefel.stiefel_shake`) is the reference; the
-parity tests in ``tests/speed`` compare the two in float64.
+With ``X`` square, ``X^T X = I`` (the scale divided out) and ``P = X Omega``
+tangent (``Omega`` skew), the SHAKE drift of length ``s`` has the closed form::
 
-**The RATTLE drift on O(n) in closed form.**  Let ``X`` be square with
-``X^T X = I`` (unit frame, the scale divided out) and ``P`` tangent, so
-``P = X Omega`` with ``Omega = X^T P`` skew.  SHAKE looks for symmetric
-``S`` with ``X' = Y + X S``, ``Y = X + s P``, ``X'^T X' = I``.  Write
-``X' = X K`` with ``K = M + s Omega`` and ``M = I + S`` symmetric.  Then::
+    X' = X K,   K = R + s Omega,   R = sqrt(I + s^2 Omega^2) = sum_j binom(1/2, j) Z^j,
+    Z = s^2 Omega^2,  P' = X' Omega
 
-    K^T K = (M - s Omega)(M + s Omega) = M^2 + s (M Omega - Omega M) - s^2 Omega^2 = I.
+(it exists for ``s ||Omega||_2 <= 1``).  One BAOAB step in the body frame,
+``V = P - h f``, ``d = e^{-gamma h}``::
 
-If ``M`` commutes with ``Omega`` the bracket vanishes and
-``M^2 = I + s^2 Omega^2``.  ``Omega^2 = -Omega^T Omega`` is symmetric with
-eigenvalues ``-omega_j^2``, so ``I + s^2 Omega^2`` is symmetric positive
-semi-definite exactly when ``s ||Omega||_2 <= 1``, and its principal square
-root ``R = sqrt(I + s^2 Omega^2)`` is a power series in ``Omega^2``: it is
-symmetric, commutes with ``Omega``, and tends to ``I`` as ``s -> 0``.  So
-``S = R - I`` solves the SHAKE equation; it is the root that vanishes with
-the step, the one the reference iteration started at ``S = 0`` converges to
-(the root near 0 is unique for small ``s`` by the implicit function
-theorem).  With ``Z = s^2 Omega^2`` (``||Z||_2 = s^2 ||Omega||_2^2``)::
-
-    X' = X K,   K = R + s Omega,   R = sum_j binom(1/2, j) Z^j.
-
-The velocity projection of RATTLE keeps ``Omega``: ``X'^T (X' - X) / s =
-(I - K^T) / s = (I - R)/s + Omega``, whose symmetric part ``(I - R)/s`` is
-removed by the tangent projection at ``X'``, leaving ``P' = X' Omega``.
-
-**One step in the body frame.**  With ``V = P - h f`` (``f`` the force in
-the unit frame), ``d = e^{-gamma h}``, ``sigma`` the noise scale and
-``xi`` the noise, one BAOAB step is::
-
-    B   Omega1 = skew(X^T V)                      (tangent projection at X)
-    A   X1 = X K(Omega1)                          (Omega unchanged)
-    O   Omega2 = d Omega1 + sigma skew(X1^T xi)   (tangent projection at X1)
+    B   Omega1 = skew(X^T V)
+    A   X1 = X K(Omega1)
+    O   Omega2 = d Omega1 + sigma skew(X1^T xi)
     A   X2 = X1 K(Omega2),   P2 = X2 Omega2
 
-The drift's input is the tangent momentum *after* the kick (first A) or
-the thermostat (second A).  At ``T = 0``, ``Omega2 = d Omega1``, so both
-drifts are series in the same ``Z``: ``K1 K2 = E(Z) + s Omega O(Z)`` with
-``E(z) = r(z) r(d^2 z) + d z`` and ``O(z) = d r(z) + r(d^2 z)``,
-``r(z) = sqrt(1 + z)``.
-
-**T = 0 from the products ``U_k = W A^k``.**  With ``A = s Omega1``,
-``K = sum_k kappa_k A^k`` (``kappa_{2j} = e_j``, ``kappa_{2j+1} = o_j``), so::
-
-    W2 = sum_{k <= N} kappa_k U_k,     s P2 = d W2 A = d sum_{k <= N} kappa_k U_{k+1}
-
-and ``U_{k+1} = U_k A`` is one n x n product.  ``N`` is the highest power
-the series cuts below (``Truncation`` below) need, rounded up to an even
-number.  For the small ``A`` of training ``N = 2`` suffices, and in
-float32 the step costs three products (``W^T V``, ``U_1``, ``U_2``) instead
-of four (``W^T V``, ``Z = A A``, ``W K`` and ``W2 A``; five when ``O`` needs
-its linear term).  In float64 the momentum's term below is cut only for
-``zeta`` below about ``1e-10``, so four products are usual there.  ``zeta``
-is read from ``||U_2||_F = scale ||Z||_F``.
-
-The momentum's last term ``d kappa_N U_{N+1}`` would cost one more
-product.  It is left out when ``tau = sum_{k >= N} |kappa_k|
-zeta^{(k+1)/2}`` (:func:`momentum_tail`, a bound of everything it and the
-higher powers add) is at most half the tolerance.  What that changes,
-against RATTLE's ``P2 = X2 Omega2`` (unit frame, ``s P2`` being the next
-drift's displacement): (1) the trajectory, by at most ``d tau <= tol / 2``,
-on top of the odd series' ``tol / 2`` and the even series' ``tol / 8`` below
-(at most ``1.125 tol`` per step in all); (2) the momentum's tangency: ``N`` is
-even, so the cut power ``A^{N+1}`` is skew, a tangent direction in the body
-frame, and its normal part (the symmetric part of ``K^T A^{N+1}``, led by
-``o_0 A^{N+2}``) is of relative size ``<= o_0 tau <= (1 + d) tol / 2 <=
-tol``; an odd ``N`` would cut an even power, which is normal, at first
-order.  The next kick projects onto the tangent space anyway.  Beyond
-``N = 4`` (large ``zeta``: early in training or at large steps) the step
-forms ``Z`` and uses the series in ``Z`` (Paterson-Stockmeyer), as the
-``T > 0`` step always does.
-
-**Truncation, existence, failure.**  ``zeta = ||Z||_F`` bounds ``||Z||_2``
-(loosely: for a random skew ``A`` of size n, by a factor of about
-``sqrt(n) / 3``).  The series are cut at the smallest
-degree whose tail bound ``sum_{j > m} |c_j| zeta^j`` is below a quarter of
-the constraint's tolerance (set by the dtype, as for the iterative SHAKE);
-the degree is reported as the projection iteration count.  At ``T = 0`` the odd
-series ``O`` gets a looser budget, half the tolerance: its truncation error
-``delta = A (O - O_m)(Z)`` is an odd function of the skew ``A`` and so skew
-itself, and a skew error moves ``K`` off the orthogonal group only at second
-order (``K^T K - I = -(K - I)^T delta - delta^T (K - I) + delta^T delta``,
-of size ``2 ||K - I|| ||delta||``, about ``4 ||A|| ||delta||``, and
-``||A||_2 <= sqrt(zeta)`` was about ``6e-3`` in the benchmark's training), so it
-changes where the step lands by at most
-half the tolerance (the plain path's SHAKE iteration stops within about the
-same distance of the exact root) without loosening the constraint.  At the
-benchmark's width 1024 this drops the cubic term (one more product).  Reading
-``zeta`` is one host synchronisation per drift.  At ``T = 0`` there are
-two: first the drift check below together with ``||A||_F^2``, a bound of
-``||Z||_F`` that needs no product (it picks the products ``U_k`` or, when
-even the bound is too large for them, ``Z`` first), then ``zeta`` itself.
-When ``zeta > 1/4`` (``s ||Omega||_2`` may exceed ``1/2``), when no degree
-up to ``MAX_DEGREE`` suffices, or when a value is not finite, the fast path
-is abandoned (nothing changed) and the plain path takes the step or raises
-the documented error; a solution exists only for ``s ||Omega||_2 <= 1``.
-
-**Roundoff drift.**  The closed form assumes ``X^T X = I``; the reference
-uses the measured ``G = X^T X`` and so corrects drift every step.  Here four
-fixed unit probe vectors ``v`` measure ``|v^T (X^T X - I) v| = ||X v|^2 - 1|``
-(matrix-vector products in float64); when it exceeds an eighth of the
-tolerance, ``X`` is first moved along the normal at ``X`` by one
-Newton-Schulz step ``X <- X (3 I - X^T X) / 2``, which squares the error.
-In float32 this happened on one step in five (measured, n = 256); where float64
-matrix-vector roundoff exceeds the threshold (float64 parameters, large
-``n``), it happens every step.
+The series are cut where their tail bound is below the constraint's tolerance
+(the degree is reported as the projection iteration count); at ``T = 0`` the
+two drifts are evaluated from the products ``W A^k``.  The kernel declines
+(the reference kernel takes the step) when ``||Z||_F > 1/4``, when no degree
+up to ``MAX_DEGREE`` suffices or when a value is not finite.  Derivations,
+truncation budgets and the roundoff-drift correction: ``docs/kernels.md``.
 """
 
 from __future__ import annotations
 
 import math
 from functools import lru_cache
+from typing import Mapping, Sequence
 
 import torch
 from torch import Tensor
 
+from holonomic.dynamics.kernels.protocol import Layout, fusable_dtype, is_plain_baoab
+from holonomic.dynamics.operators import ou_coefficients
+from holonomic.dynamics.transaction import GroupResult, StepInput, StepResult
+from holonomic.geometry import Orthonormal
+from holonomic.geometry.base import Constraint, default_tolerance
+
 __all__ = [
+    "SquareOrthonormalKernel",
     "MAX_DEGREE",
     "sqrt_series",
     "series_degree",
@@ -127,15 +46,15 @@ __all__ = [
     "square_orthonormal_baoab",
 ]
 
-#: Highest series degree tried before the fast path gives way to the plain one.
+#: Highest series degree tried before the kernel declines (the reference kernel takes the step).
 MAX_DEGREE = 24
 _TERMS = 48  # coefficients kept for tail bounds (zeta <= 1/4: 4^-48 is negligible)
 _ZETA_MAX = 0.25
-#: Tail budget of the odd series at T = 0, as a fraction of the tolerance (module docstring).
+#: Tail budget of the odd series at T = 0, as a fraction of the tolerance (docs/kernels.md).
 _ODD_BUDGET = 0.5
-#: Tail budget of the momentum at T = 0, as a fraction of the tolerance (module docstring).
+#: Tail budget of the momentum at T = 0, as a fraction of the tolerance (docs/kernels.md).
 _MOMENTUM_BUDGET = 0.5
-#: Highest power of A that the T = 0 step reaches by products W A^k (module docstring).
+#: Highest power of A that the T = 0 step reaches by products W A^k (docs/kernels.md).
 _PRODUCTS_MAX = 4
 
 
@@ -150,7 +69,7 @@ def sqrt_series(terms: int = _TERMS) -> tuple[float, ...]:
 
 @lru_cache(maxsize=64)
 def _combined_series(decay: float) -> tuple[tuple[float, ...], tuple[float, ...]]:
-    """``E`` and ``O`` of the module docstring (two drifts at ``T = 0``)."""
+    """``E`` and ``O`` of docs/kernels.md (two drifts at ``T = 0``)."""
     r = sqrt_series()
     rd = [c * decay ** (2 * j) for j, c in enumerate(r)]
     e = [sum(r[i] * rd[j - i] for i in range(j + 1)) for j in range(_TERMS)]
@@ -268,11 +187,11 @@ def square_orthonormal_baoab(
     ``w`` (b, n, n) with ``W^T W = scale^2 I``, ``v = P - h f`` (the momentum
     after the full kick, not yet projected), ``noise`` the standard normal
     noise (``sigma`` its scale) or ``None`` at ``T = 0``, all in the
-    parameter's units; the unit frame of the module docstring is
+    parameter's units; the unit frame of docs/kernels.md is
     ``X = W / scale``, and the scale is folded into the products.  Returns
     ``(W2, P2, kinetic, ok, degree)`` (``kinetic`` = ``|P2|^2 / 2`` per
     matrix, ``ok`` a 0-d flag of finite results) or ``None`` when the closed
-    form does not apply (module docstring).  Nothing is modified in place.
+    form does not apply (docs/kernels.md).  Nothing is modified in place.
     """
     s = 0.5 * step
     scale2 = scale * scale
@@ -328,7 +247,7 @@ def _finish(w2: Tensor, p2: Tensor, degree: int) -> tuple[Tensor, Tensor, Tensor
 @lru_cache(maxsize=64)
 def power_coefficients(decay: float, count: int) -> tuple[float, ...]:
     """``kappa_k``, ``k < count``, of ``K = sum_k kappa_k A^k`` at ``T = 0``:
-    ``kappa_{2j} = e_j`` and ``kappa_{2j+1} = o_j`` (module docstring)."""
+    ``kappa_{2j} = e_j`` and ``kappa_{2j+1} = o_j`` (docs/kernels.md)."""
     e, o = _combined_series(decay)
     return tuple(e[k // 2] if k % 2 == 0 else o[k // 2] for k in range(count))
 
@@ -337,7 +256,7 @@ def momentum_tail(decay: float, zeta: float, first: int) -> float:
     """``tau = sum_{k >= first} |kappa_k| zeta^{(k+1)/2}``, a bound of
     ``|| sum_{k >= first} kappa_k A^{k+1} ||_2`` for ``||A||_2^2 <= zeta``:
     what ``X K A`` loses (unit frame) when the momentum keeps only the
-    products ``W A^j``, ``j <= first`` (module docstring)."""
+    products ``W A^j``, ``j <= first`` (docs/kernels.md)."""
     kappa = power_coefficients(decay, 2 * _TERMS)
     return sum(abs(c) * zeta ** ((k + 1) / 2) for k, c in enumerate(kappa) if k >= first)
 
@@ -345,14 +264,14 @@ def momentum_tail(decay: float, zeta: float, first: int) -> float:
 def _cold_degrees(decay: float, zeta: float, tolerance: float) -> tuple[int, int, int] | None:
     """``(m_e, m_o, N)`` at ``T = 0``: the degrees of the series ``E`` and
     ``O`` for ``||Z||_2 <= zeta`` and the highest power of ``A`` in ``K``,
-    rounded up to an even number (module docstring); ``None`` when no degree
+    rounded up to an even number (docs/kernels.md); ``None`` when no degree
     suffices."""
     if not math.isfinite(zeta):
         return None
     e, o = _combined_series(decay)
     m_e = series_degree(e, zeta, 0.125 * tolerance)
     # the odd part's truncation error is skew: it moves K off O(n) only at second order
-    # (module docstring), so it gets the looser budget of a trajectory error
+    # (docs/kernels.md), so it gets the looser budget of a trajectory error
     m_o = series_degree(o, zeta, _ODD_BUDGET * tolerance, weight=math.sqrt(zeta))
     if m_e is None or m_o is None:
         return None
@@ -362,7 +281,7 @@ def _cold_degrees(decay: float, zeta: float, tolerance: float) -> tuple[int, int
 
 def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
                tolerance: float) -> tuple[Tensor, Tensor, Tensor, Tensor, int] | None:
-    """The ``T = 0`` step from the products ``U_k = W A^k`` (module docstring)."""
+    """The ``T = 0`` step from the products ``U_k = W A^k`` (docs/kernels.md)."""
     scale2 = scale * scale
     a = _scaled_skew(w, v, 0.5 * s / scale2)  # A = s Omega1 = s skew(X^T V)
     # ||Z||_F <= ||A||_F^2 bounds zeta without a product (first sync, with the drift check)
@@ -407,3 +326,65 @@ def _cold_step(w: Tensor, v: Tensor, *, scale: float, s: float, decay: float,
     for k in range(1, last):
         p2.add_(u[k + 1], alpha=p_alpha * kappa[k])
     return _finish(w2, p2, degree)
+
+
+class SquareOrthonormalKernel:
+    """BAOAB-RATTLE for square ``Orthonormal`` parameters in closed form, batched
+    over the parameters of one shape, dtype, device, tolerance and settings."""
+
+    name = "square-orthonormal"
+
+    def supports(self, scheme: object, settings: object, constraint: Constraint, dtype: torch.dtype,
+                 device: torch.device, layout: Layout) -> bool:
+        shape = layout.shape
+        return (isinstance(constraint, Orthonormal) and layout.dense and is_plain_baoab(scheme, settings)
+                and fusable_dtype(dtype, True) and len(shape) >= 2 and shape[0] == math.prod(shape[1:]))
+
+    def run(self, inputs: Sequence[StepInput], group_states: Mapping[int, Mapping[str, Tensor]]
+            ) -> tuple[list[StepResult | None], dict[int, GroupResult]]:
+        results: list[StepResult | None] = [None] * len(inputs)
+        batches: dict[tuple, list[int]] = {}
+        for i, u in enumerate(inputs):
+            s, w, c = u.settings, u.position, u.constraint
+            tol = c.tolerance if c.tolerance is not None else default_tolerance(w.dtype)
+            batches.setdefault((s.step, s.friction, s.temperature, w.shape, w.dtype, w.device, tol), []).append(i)
+        for (h, friction, temperature, shape, _, _, tol), members in batches.items():
+            decay, sigma = ou_coefficients(friction, h, temperature)
+            _batch(inputs, members, results, shape[0], h, decay, sigma, tol)
+        return results, {}
+
+
+def _batch(inputs: Sequence[StepInput], members: list[int], results: list, n: int, h: float, decay: float,
+           sigma: float, tol: float) -> None:
+    """One batched closed-form step; leaves ``results`` at ``None`` (declined) when
+    the closed form does not apply."""
+    items = [inputs[i] for i in members]
+    scales = {u.constraint.scale for u in items}
+    if len(scales) > 1:  # different scales in one batch: one unit scale, folded per matrix
+        def stacked(ts: list[Tensor]) -> Tensor:
+            return torch.stack([t.reshape(n, n) / u.constraint.scale for t, u in zip(ts, items)])
+        scale = 1.0
+    else:
+        def stacked(ts: list[Tensor]) -> Tensor:
+            mats = [t.reshape(n, n) for t in ts]
+            return mats[0].unsqueeze(0) if len(mats) == 1 else torch.stack(mats)
+        scale = scales.pop()
+    kicked = [u.force().mul(-h) if u.momentum is None else torch.add(u.momentum, u.force(), alpha=-h)
+              for u in items]
+    noise = None if sigma <= 0 else stacked([u.noise[0] for u in items])
+    out = square_orthonormal_baoab(stacked([u.position for u in items]), stacked(kicked), noise, scale=scale,
+                                   step=h, decay=decay, sigma=sigma, tolerance=tol)
+    if out is None:
+        return
+    w2, p2, kinetic, ok, degree = out
+    for k, (i, u) in enumerate(zip(members, items)):
+        factor = u.constraint.scale / scale
+
+        def apply(u=u, w2=w2[k], p2=p2[k], kinetic=kinetic[k], factor=factor):
+            momentum = p2.view(u.position.shape)
+            if factor != 1.0:
+                w2, momentum, kinetic = w2 * factor, momentum * factor, kinetic * factor**2
+            u.position.copy_(w2.view(u.position.shape))
+            return momentum, kinetic
+
+        results[i] = StepResult(ok, degree, apply, SquareOrthonormalKernel.name)
