@@ -64,10 +64,27 @@ def _env() -> dict[str, str]:
     return {**os.environ, "PYTHONPATH": path, "PYTHONUNBUFFERED": "1"}
 
 
-def _start_study(tmp_path: Path) -> tuple[subprocess.Popen, dict[int, str]]:
+#: Runs the command line with a worker set-up that starts 1.5 s late, as on a loaded machine:
+#: a signal then reaches workers that still carry the parent's handlers (unless held).
+_SLOW_WORKER_START = textwrap.dedent("""
+    import sys, time
+    from holonomic.study import execution
+    original = execution._worker_init
+    def late(*args):
+        time.sleep(1.5)
+        original(*args)
+    execution._worker_init = late
+    from holonomic.cli import main
+    sys.exit(main(sys.argv[1:]))
+""")
+
+
+def _start_study(tmp_path: Path, slow_workers: bool = False,
+                 ) -> tuple[subprocess.Popen, dict[int, str]]:
     """A study with 2 workers and long runs, started as a command; waits for the workers."""
     study = write_study(tmp_path, SMALL_TOML.replace("epochs = 3", "epochs = 5000"))
-    proc = subprocess.Popen([sys.executable, "-m", "holonomic", "study", str(study), "--out",
+    command = ["-c", _SLOW_WORKER_START] if slow_workers else ["-m", "holonomic"]
+    proc = subprocess.Popen([sys.executable, *command, "study", str(study), "--out",
                              str(tmp_path / "out"), "--workers", "2", "--quiet", "--no-plots"],
                             env=_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             text=True)
@@ -86,9 +103,12 @@ def _start_study(tmp_path: Path) -> tuple[subprocess.Popen, dict[int, str]]:
 
 
 @pytest.mark.slow
+@pytest.mark.parametrize("slow_workers", [False, True], ids=["", "workers-starting"])
 @pytest.mark.parametrize("how", ["SIGKILL", "SIGTERM", "SIGINT"])
-def test_workers_end_with_the_parent(tmp_path, how):
-    proc, workers = _start_study(tmp_path)
+def test_workers_end_with_the_parent(tmp_path, how, slow_workers):
+    # workers-starting: the signal comes while the workers are still being set up (a
+    # loaded machine); they must end quietly, without a traceback from the parent's handler
+    proc, workers = _start_study(tmp_path, slow_workers)
     try:
         proc.send_signal(getattr(signal, how))
         proc.wait(timeout=30)

@@ -310,6 +310,32 @@ def _exit_with_parent(parent_pid: int, kernel_signal: bool = True) -> None:
     threading.Thread(target=watch, name="holonomic-parent-watch", daemon=True).start()
 
 
+#: Signals held back while workers are forked (:func:`_signals_blocked`).
+_HELD_SIGNALS = tuple(getattr(signal, name) for name in ("SIGINT", "SIGTERM", "SIGHUP")
+                      if hasattr(signal, name))
+
+
+@contextlib.contextmanager
+def _signals_blocked() -> Iterator[None]:
+    """Hold SIGINT, SIGTERM and SIGHUP while the pool forks its workers.
+
+    A forked worker starts with the parent's Python handlers (SIGTERM would raise
+    :class:`StudyTerminated` inside the worker and print a traceback) until
+    :func:`_worker_init` resets them; with the signals blocked across the fork, the worker
+    inherits the block and receives them only after its reset (:func:`_worker_init`
+    unblocks), and the parent receives one that arrived meanwhile when the block ends.
+    Where ``pthread_sigmask`` is missing (Windows, spawn) this does nothing.
+    """
+    if not hasattr(signal, "pthread_sigmask"):
+        yield
+        return
+    previous = signal.pthread_sigmask(signal.SIG_BLOCK, _HELD_SIGNALS)
+    try:
+        yield
+    finally:
+        signal.pthread_sigmask(signal.SIG_SETMASK, previous)
+
+
 def _worker_init(parent_pid: int | None = None) -> None:
     """Set up a worker: torch single-threaded; Ctrl-C left to the parent (which stops the
     pool); SIGTERM / SIGHUP end the worker (a handler inherited through ``fork`` is reset);
@@ -318,6 +344,8 @@ def _worker_init(parent_pid: int | None = None) -> None:
     for name in ("SIGTERM", "SIGHUP"):
         if hasattr(signal, name):
             signal.signal(getattr(signal, name), signal.SIG_DFL)
+    if hasattr(signal, "pthread_sigmask"):  # held across the fork (_signals_blocked)
+        signal.pthread_sigmask(signal.SIG_UNBLOCK, _HELD_SIGNALS)
     torch.set_num_threads(1)
     os.environ.setdefault("OMP_NUM_THREADS", "1")
     if parent_pid is not None:
@@ -361,7 +389,8 @@ def _run_pool(config: StudyConfig, pending: Sequence[RunSpec], out_dir: str, wor
     pool = ProcessPoolExecutor(max_workers=workers, mp_context=_context(),
                                initializer=_worker_init, initargs=(os.getpid(),))
     try:
-        futures = {pool.submit(execute, config, spec, out_dir) for spec in pending}
+        with _signals_blocked():  # the workers are forked here (see _signals_blocked)
+            futures = {pool.submit(execute, config, spec, out_dir) for spec in pending}
         while futures:
             finished, futures = wait(futures, return_when=FIRST_COMPLETED)
             for future in finished:
