@@ -8,6 +8,7 @@ import json
 import textwrap
 import math
 
+import numpy as np
 import pytest
 import torch
 from torch import nn
@@ -479,3 +480,34 @@ def test_halving_study_rerun_reuses_every_run_and_reports(tmp_path, capsys):
                       for p in (tmp_path / "out" / "runs").glob("*.json")}
     assert main(args + ["--report-only"]) == 0
     assert "halving" in (tmp_path / "out" / "report.md").read_text().lower()
+
+
+def test_load_trained_by_trial_gives_the_recorded_test_accuracy(tmp_path):
+    # a recipe arm's network found by (arm, trial, seed) predicts what its record says;
+    # reference: sklearn.metrics.accuracy_score on the saved network's labels
+    import csv
+
+    from sklearn.metrics import accuracy_score
+
+    from holonomic.study import load_trained, predict, run_study
+    from holonomic.study.runner import load_folds
+
+    doc = recipe_doc()
+    doc["arms"] = {"adamw": RECIPE_DOC["arms"]["adamw_dwd"], "sgd_wd": RECIPE_DOC["arms"]["sgd_wd"]}
+    doc["study"]["baseline"] = "sgd_wd"
+    config = parse_config(doc)
+    out = tmp_path / "out"
+    run_study(config, out, progress=False, plots=False)
+    rows = list(csv.DictReader((out / "results.csv").open()))
+    row = next(r for r in rows if r["arm"] == "adamw" and r["setting_index"] == "2")
+    seed = int(row["seed"])
+    model, info = load_trained(out, "adamw", trial=2, seed=seed)
+    dataset, splits = load_folds(config, seed)
+    index = splits[0].test_index  # raw features and labels of the test part
+    assert float(row["test_accuracy"]) == pytest.approx(
+        accuracy_score(np.asarray(dataset.classes)[dataset.y[index]],
+                       predict(model, info, dataset.x[index])), abs=1e-12)
+    with pytest.raises(ValueError, match="not both"):
+        load_trained(out, "adamw", strength=0.1, seed=seed, trial=2)
+    with pytest.raises(FileNotFoundError, match="trial 7"):
+        load_trained(out, "adamw", trial=7, seed=seed)

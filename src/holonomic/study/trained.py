@@ -201,14 +201,16 @@ def rebuild_model(info: dict[str, Any], study_dir: str | Path | None = None) -> 
 
 
 def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
-                 seed: int | None = None, fold: int | None = None,
-                 ) -> tuple[nn.Module, dict[str, Any]]:
+                 seed: int | None = None, fold: int | None = None, *,
+                 trial: int | None = None) -> tuple[nn.Module, dict[str, Any]]:
     """Rebuild a trained network of a study and load its weights (eval mode).
 
     Args:
         study_dir: the study's ``--out`` directory.
-        run: a run key (``"fixed_norm-0.5-s3"``), or an arm name with ``strength`` and
-            ``seed``.
+        run: a run key (``"fixed_norm-0.5-s3"``), or an arm name with ``seed`` and either
+            ``trial`` (the trial's index within the arm, as in ``results.csv`` column
+            ``setting_index`` and the report; the full-budget run) or ``strength`` (arms
+            that search only their strength, the old grid studies).
         fold: for k-fold data, which fold's network (required then).
 
     Returns:
@@ -218,12 +220,17 @@ def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
     Raises:
         FileNotFoundError: no weights for that run (not finished, failed, or trained
             before weights were saved), naming the file looked for.
-        ValueError: k-fold weights and no ``fold``, or ``strength`` without ``seed``.
+        ValueError: k-fold weights and no ``fold``; ``seed`` without ``trial`` or
+            ``strength`` (or the reverse), or both ``trial`` and ``strength``.
     """
-    if (strength is None) != (seed is None):
-        raise ValueError("load_trained: give both strength and seed with an arm name, or a "
-                         "run key alone")
-    if strength is None:
+    if trial is not None and strength is not None:
+        raise ValueError("load_trained: give trial or strength with an arm name, not both")
+    if ((strength is None and trial is None) != (seed is None)):
+        raise ValueError("load_trained: give an arm name with seed and trial (or strength), "
+                         "or a run key alone")
+    if trial is not None:
+        key = _trial_key(study_dir, run, int(trial), int(seed))
+    elif strength is None:
         key = run
     else:
         from holonomic.study.runner import RunSpec
@@ -247,6 +254,23 @@ def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
     info = load_weights(path)
     info["path"] = str(path)
     return rebuild_model(info, study_dir), info
+
+
+def _trial_key(study_dir: str | Path, arm: str, trial: int, seed: int) -> str:
+    """Key of the full-budget run of ``arm``'s trial ``trial`` at ``seed`` (run records read
+    from ``study_dir/runs``)."""
+    for path in sorted(storage.runs_dir(study_dir).glob("*.json")):
+        try:
+            record = storage.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            continue
+        if (isinstance(record, dict) and record.get("arm") == arm and record.get("seed") == seed
+                and record.get("trial", record.get("setting_index")) == trial
+                and record.get("budget_fraction", 1.0) == 1.0):
+            return str(record.get("key", path.stem))
+    raise FileNotFoundError(f"load_trained: no finished full-budget run of arm {arm!r}, trial "
+                            f"{trial}, seed {seed} in {str(study_dir)!r} (trials are numbered "
+                            "from 0 within each arm: results.csv column setting_index)")
 
 
 def raw_outputs(model: nn.Module, info: dict[str, Any], x: Any) -> np.ndarray:
