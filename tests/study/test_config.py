@@ -67,7 +67,8 @@ def test_empty_grid(tiny_doc):
 
 def test_unequal_grids_and_missing_baseline(tiny_doc):
     tiny_doc["arms"]["fixed_norm"]["grid"] = [0.5, 1.0, 2.0]
-    assert "same number of grid points" in _error(tiny_doc)
+    message = _error(tiny_doc)
+    assert "same number of grid points" in message and "search.strength = {low" in message
     tiny_doc["arms"]["fixed_norm"]["grid"] = [0.5, 1.0]
     del tiny_doc["arms"]["weight_decay"]
     assert "'arms.weight_decay' is missing" in _error(tiny_doc)

@@ -1184,7 +1184,9 @@ def _plan_arm_trials(arms: tuple[ArmConfig, ...], trials: int | None, method: st
         elif searched and all(is_grid(a) for a in searched):
             listed = ", ".join(f"arms.{a.name} has {grid_size(a)}" for a in searched)
             raise _fail("every tuned arm needs the same number of grid points (a fair "
-                        f"search: 'study.trials' each); got {listed}")
+                        f"search: 'study.trials' each); got {listed}. Give every grid the "
+                        "same length, or set 'study.trials' and give ranges instead of lists, "
+                        "e.g. search.strength = {low = 0.25, high = 2.0, scale = \"log\"}")
         else:
             trials = DEFAULT_TRIALS
     out = []
@@ -1214,7 +1216,7 @@ def _check_baseline(config: StudyConfig, given: bool) -> None:
                     f"[arms.{config.baseline}])")
     raise _fail(f"'arms.{config.baseline}' is missing: every arm is compared against the "
                 f"baseline arm (study.baseline, default {BASELINE_ARM}); add "
-                f"[arms.{config.baseline}] with a grid, or set 'study.baseline' to one of the "
+                f"[arms.{config.baseline}] (its search space as for any arm), or set 'study.baseline' to one of the "
                 f"study's arms: {', '.join(names)}")
 
 
