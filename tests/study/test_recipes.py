@@ -6,6 +6,7 @@ from __future__ import annotations
 import copy
 import json
 import textwrap
+import warnings
 import math
 
 import numpy as np
@@ -511,3 +512,24 @@ def test_load_trained_by_trial_gives_the_recorded_test_accuracy(tmp_path):
         load_trained(out, "adamw", strength=0.1, seed=seed, trial=2)
     with pytest.raises(FileNotFoundError, match="trial 7"):
         load_trained(out, "adamw", trial=7, seed=seed)
+
+
+def test_runs_record_the_library_version_and_a_resume_across_versions_warns(tmp_path):
+    import holonomic
+    from holonomic.study import run_study
+
+    doc = recipe_doc()
+    doc["arms"] = {"sgd_wd": RECIPE_DOC["arms"]["sgd_wd"]}
+    config = parse_config(doc)
+    out = tmp_path / "out"
+    run_study(config, out, progress=False, plots=False)
+    files = sorted((out / "runs").glob("*.json"))
+    record = json.loads(files[0].read_text())
+    assert record["holonomic_version"] == holonomic.__version__
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the same version: no warning
+        run_study(config, out, progress=False, plots=False)
+    record["holonomic_version"] = "0.0.1"
+    files[0].write_text(json.dumps(record))
+    with pytest.warns(UserWarning, match="made by holonomic 0.0.1"):
+        run_study(config, out, progress=False, plots=False)

@@ -160,7 +160,7 @@ def test_weights_file_layout_and_load_predict(tiny_doc, tmp_path):
     (tmp_path / "runs" / f"{spec.key}.json").unlink()
     with pytest.raises(FileNotFoundError, match=f"no finished run '{spec.key}'"):
         load_trained(tmp_path, spec.key)
-    with pytest.raises(ValueError, match="both strength and seed"):
+    with pytest.raises(ValueError, match="with seed and trial \\(or strength\\)"):
         load_trained(tmp_path, "orthonormal", strength=0.5)
 
 

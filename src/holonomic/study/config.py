@@ -1216,8 +1216,8 @@ def _check_baseline(config: StudyConfig, given: bool) -> None:
                     f"[arms.{config.baseline}])")
     raise _fail(f"'arms.{config.baseline}' is missing: every arm is compared against the "
                 f"baseline arm (study.baseline, default {BASELINE_ARM}); add "
-                f"[arms.{config.baseline}] (its search space as for any arm), or set 'study.baseline' to one of the "
-                f"study's arms: {', '.join(names)}")
+                f"[arms.{config.baseline}] (its search space as for any arm), or set "
+                f"'study.baseline' to one of the study's arms: {', '.join(names)}")
 
 
 def _parse_ensemble(table: Any, where: str) -> EnsembleConfig:

@@ -26,6 +26,7 @@ import signal
 import sys
 import threading
 import time
+import warnings
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from multiprocessing import get_all_start_methods, get_context
 from pathlib import Path
@@ -130,6 +131,22 @@ def check_compatible(config: StudyConfig, records: dict[str, dict], out_dir: str
                 f"{record.get('ensemble_settings')}, the study asks for {wanted} "
                 f"([arms.{record['arm']}.ensemble]); use a new --out directory or delete that "
                 f"arm's runs ({record['arm']}-*.json) from {runs!r}")
+    _warn_other_versions(records, out_dir)
+
+
+def _warn_other_versions(records: dict[str, dict], out_dir: str | Path) -> None:
+    """Warn (once) when stored runs were made by another holonomic version (or before runs
+    recorded it): the integrators may have changed, and a resumed study would mix runs of
+    both versions. A warning, not a refusal: the runs stay usable for a report."""
+    import holonomic
+
+    others = sorted({str(r.get("holonomic_version", "unrecorded")) for r in records.values()}
+                    - {holonomic.__version__})
+    if others:
+        warnings.warn(
+            f"{str(out_dir)!r} holds runs made by holonomic {', '.join(others)}, this is "
+            f"{holonomic.__version__}; new runs would be mixed with them. For a study made "
+            "by one version, use a new --out directory", UserWarning, stacklevel=3)
 
 
 #: Parts of the study definition (``DIR/study.json``) that the training fingerprint covers.

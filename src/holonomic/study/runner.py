@@ -51,6 +51,7 @@ import numpy as np
 import torch
 from torch import nn
 
+import holonomic
 from holonomic.study import storage
 from holonomic.study.arms import constraint_residual, weight_norms
 from holonomic.study.config import (ArmConfig, BudgetConfig, ModelConfig, StudyConfig,
@@ -550,6 +551,7 @@ def _train_run(config: StudyConfig, spec: RunSpec, hooks: Sequence[StepHook] | N
         "status": status,
         "message": message,
         "fingerprint": config.training_fingerprint(),
+        "holonomic_version": holonomic.__version__,
         "task": task.name,
         "n_classes": task.n_classes,
         "classes": [str(c) for c in dataset.classes],
