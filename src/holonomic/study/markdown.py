@@ -13,7 +13,8 @@ from typing import Any
 
 from holonomic.study.selection import StudyMetrics
 from holonomic.study.stats import ALPHA, POWER, comparison_note
-from holonomic.study.summary import DEFAULT_BASELINE, SHORT_NAMES, short_name
+from holonomic.study.summary import (
+    DEFAULT_BASELINE, SHORT_NAMES, adjusted_interval, short_name)
 from holonomic.study.ensemble_report import ensemble_lines
 from holonomic.study.tasks import PARTS, Task, recorded_n_classes
 from holonomic.study.tasks import split_metric_name as _split_name
@@ -58,19 +59,21 @@ def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics,
     note = comparison_note(comp)
     if note:
         return f"the data cannot tell them apart ({note})"
-    if comp["includes_zero"]:
-        return "the data cannot tell them apart (the interval includes 0)"
+    low, high, m = adjusted_interval(comp)
+    which = "the simultaneous interval" if m > 1 else "the interval"
+    if not (low > 0.0 or high < 0.0):
+        return f"the data cannot tell them apart ({which} includes 0)"
     prefix, base = _split_name(metric)
     higher = comp["mean_difference"] > 0
     if prefix in ("gap_", "val_gap_"):
         return (f"{arm} has a {'larger' if higher else 'smaller'} gap than {baseline} "
-                "(the interval excludes 0)")
+                f"({which} excludes 0)")
     try:
         good = higher == metrics.higher_is_better(base)
     except KeyError:
         return f"{arm} {'higher' if higher else 'lower'} than {baseline}"
     return (f"{arm} {'better' if good else 'worse'} than {baseline} "
-            f"({'higher' if higher else 'lower'}; the interval excludes 0)")
+            f"({'higher' if higher else 'lower'}; {which} excludes 0)")
 
 
 def _count(values: list[int]) -> str:
@@ -97,7 +100,8 @@ def _verdict_lines(summary: dict[str, Any]) -> list[str]:
         return [f"**Verdict**: no arm to compare with {baseline}.", ""]
     lines = [f"**Verdict** (test {_SHORT.get(task['headline'], task['headline'])} of the "
              f"chosen settings, arm minus {baseline} paired by seed: mean difference "
-             f"[95% t interval]; {'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
+             f"[95% interval, simultaneous over the arms compared with {baseline} "
+             f"(Bonferroni), so that the verdicts hold together]; {'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
              " is better):", ""]
     lines += [f"- {v['line']}" for v in summary["verdict"]]
     return lines + [""]
@@ -274,7 +278,12 @@ def _protocol_lines(metrics: StudyMetrics, baseline: str = BASELINE_ARM,
               "(`study.baseline`), seed by seed. Holm p is Holm's step-down adjustment "
               "(Holm 1979) of the Wilcoxon p-values over the arms compared, per metric: it "
               "controls the family-wise error rate (the chance of calling any arm different "
-              "when none is) over the arms, for each metric separately. d_z is the mean "
+              "when none is) over the arms, for each metric separately. The verdict and the "
+              "reading of each comparison use the simultaneous interval: with m arms "
+              "compared with the baseline, each arm's t interval at level 1 - 0.05/m "
+              "(Bonferroni), so that all m intervals hold together with probability at least "
+              "95% (with one arm it is the plain 95% interval); the raw 95% interval is shown "
+              "beside it. d_z is the mean "
               "paired difference over its sd (Cohen's standardised effect size).",
               f"- Power figures: `detectable (80% power)` is the smallest true mean "
               f"difference a two-sided paired t test at level {ALPHA:g} would detect with "
@@ -345,23 +354,26 @@ def report_markdown(config: Any, summary: dict[str, Any], description: str,
     lines += [""] + _chosen_table(summary, metrics)
     lines += ["", f"## Paired comparison against {baseline}", "",
               f"Differences are arm minus {baseline} per seed (chosen settings); 95% t "
-              "interval (scipy.stats.t), two-sided Wilcoxon signed-rank p "
+              "interval (scipy.stats.t) for each arm alone, and the 95% simultaneous "
+              "interval over the arms compared (Bonferroni: each at level 1 - 0.05/m for m "
+              "arms; the reading and the verdict use it), two-sided Wilcoxon signed-rank p "
               "(scipy.stats.wilcoxon) raw and Holm-adjusted over the arms (per metric), "
               "Cohen's d_z, and the smallest difference detectable with 80% power (see "
               "Protocol).", "",
-              "| arm | metric | mean difference [95% CI] | Wilcoxon p | Holm p | d_z | "
-              "detectable (80% power) | reading |",
-              "|---|---|---|---|---|---|---|---|"]
+              "| arm | metric | mean difference [95% CI] | simultaneous 95% CI (Bonferroni) "
+              "| Wilcoxon p | Holm p | d_z | detectable (80% power) | reading |",
+              "|---|---|---|---|---|---|---|---|---|"]
     for name, comps in summary["comparisons"].items():
         for metric, comp in comps.items():
             lines.append(
                 f"| {name} | {metric} | {_num(comp['mean_difference'])} "
                 f"[{_num(comp['ci_low'])}, {_num(comp['ci_high'])}] | "
-                f"{_num(comp['p_wilcoxon'], 3)} | {_num(comp.get('p_holm'), 3)} | "
+                f"{_simultaneous_cell(comp)} | {_num(comp['p_wilcoxon'], 3)} | "
+                f"{_num(comp.get('p_holm'), 3)} | "
                 f"{_num(comp.get('d_z'), 2)} | {_num(comp.get('detectable_difference'))} | "
                 f"{_reading(name, metric, comp, metrics, baseline)} |")
     if not summary["comparisons"]:
-        lines.append("| - | - | - | - | - | - | - | no comparison possible |")
+        lines.append("| - | - | - | - | - | - | - | - | no comparison possible |")
     if summary.get("power_notes"):
         lines += [""] + [f"- {note['line']}" for note in summary["power_notes"]]
     lines += ensemble_lines(summary["ensembles"])
@@ -369,6 +381,14 @@ def report_markdown(config: Any, summary: dict[str, Any], description: str,
     lines += _caveat_lines(config, summary, metrics, n_seeds)
     lines += _file_lines(summary, plots)
     return "\n".join(lines) + "\n"
+
+
+def _simultaneous_cell(comp: dict) -> str:
+    """``[low, high] (m arms)``: the Bonferroni interval of the paired table."""
+    if "ci_low_adjusted" not in comp:
+        return "n/a"
+    low, high, m = adjusted_interval(comp)
+    return f"[{_num(low)}, {_num(high)}] ({m} arm{'s' if m != 1 else ''})"
 
 
 def _scope_lines(summary: dict[str, Any], n_seeds: int) -> list[str]:

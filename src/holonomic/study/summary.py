@@ -4,8 +4,8 @@ Each arm's chosen trial comes from :mod:`holonomic.study.selection`; everything 
 run records (``{key: dict or RunRecord}``, :mod:`holonomic.study.records`) and
 :class:`~holonomic.study.selection.Selection` objects, never the runner's plan. Every other
 arm is compared with the baseline arm seed by seed (:func:`compare_with_baseline`): mean
-difference with a 95% t interval, Wilcoxon p raw and Holm-adjusted over the arms per
-metric, Cohen's d_z, the difference detectable with 80% power and, with a ``min_effect``,
+difference with a 95% t interval and a simultaneous (Bonferroni) interval over the arms compared
+(which the verdict reads), Wilcoxon p raw and Holm-adjusted over the arms per metric, Cohen's d_z, the difference detectable with 80% power and, with a ``min_effect``,
 the seeds needed to detect it (:mod:`holonomic.study.stats`).
 """
 
@@ -23,8 +23,8 @@ from holonomic.study.ensemble_report import ensemble_metric_names, ensemble_summ
 from holonomic.study.records import RunRecord, as_records
 from holonomic.study.selection import Selection, StudyMetrics
 from holonomic.study.stats import (
-    ALPHA, MAX_SEEDS, POWER, comparison_note, holm_adjust, paired_comparison, seeds_needed,
-    wilcoxon_min_p)
+    ALPHA, MAX_SEEDS, POWER, bonferroni_interval, comparison_note, holm_adjust,
+    paired_comparison, seeds_needed, wilcoxon_min_p)
 from holonomic.study.tasks import PARTS, metric_range
 from holonomic.study.tasks import split_metric_name as _split_name
 
@@ -329,19 +329,37 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
         return {"arm": arm, "metric": metric, "reading": "no verdict",
                 "line": f"{arm} vs {baseline}, {label}: no verdict ({why})"}
     note = comparison_note(comp)
-    if note or comp["ci_low"] <= 0.0 <= comp["ci_high"]:
+    low, high, m = adjusted_interval(comp)
+    if note or low <= 0.0 <= high:
         reading = "cannot tell apart"
     else:
         arm_higher = comp["mean_difference"] > 0
         reading = "better" if arm_higher == metrics.higher_is_better(base) else "worse"
     digits = digits_for(metric, comp)
     line = (f"{arm} vs {baseline}, {label}: {reading} "
-            f"({comp['mean_difference']:+.{digits}f} [{comp['ci_low']:+.{digits}f}, "
-            f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds"
-            + (f"; {note}" if note else "") + ")")
+            f"({comp['mean_difference']:+.{digits}f} [{low:+.{digits}f}, {high:+.{digits}f}] "
+            f"{interval_name(m)}, {comp['n']} seeds" + (f"; {note}" if note else "") + ")")
     return {"arm": arm, "metric": metric, "reading": reading,
-            "mean_difference": comp["mean_difference"], "ci_low": comp["ci_low"],
-            "ci_high": comp["ci_high"], "n": comp["n"], "line": line}
+            "mean_difference": comp["mean_difference"], "ci_low": low, "ci_high": high,
+            "ci_low_unadjusted": comp["ci_low"], "ci_high_unadjusted": comp["ci_high"],
+            "arms_compared": m, "n": comp["n"], "line": line}
+
+
+def adjusted_interval(comp: Mapping[str, Any]) -> tuple[float, float, int]:
+    """``(low, high, m)``: a comparison's simultaneous (Bonferroni) interval over the ``m``
+    arms compared; a comparison dict made before it existed gives its raw interval, m 1."""
+    if "ci_low_adjusted" in comp:
+        return comp["ci_low_adjusted"], comp["ci_high_adjusted"], int(comp["arms_compared"])
+    return comp["ci_low"], comp["ci_high"], 1
+
+
+def interval_name(m: int) -> str:
+    """How the verdict names its interval: ``"95% t interval"`` for one arm compared,
+    ``"95% simultaneous over 4 arms, Bonferroni"`` for several."""
+    confidence = f"{100 * (1 - ALPHA):g}%"
+    if m <= 1:
+        return f"{confidence} t interval"
+    return f"{confidence} simultaneous over {m} arms, Bonferroni"
 
 
 def digits_for(metric: str, comp: dict[str, Any]) -> int:
@@ -393,9 +411,12 @@ def compare_with_baseline(chosen: Mapping[str, Selection], metrics: StudyMetrics
         for metric in metrics.compared:
             result = paired_comparison(sel.values(metric), base.values(metric))
             comparisons[name][metric] = result.to_dict()
-        verdict += [_verdict_entry(name, m, comparisons[name][m], metrics, "", baseline)
-                    for m in judged]
+        verdict += [(name, m) for m in judged]
     _add_holm(comparisons)
+    _add_simultaneous(comparisons)
+    verdict = [v if isinstance(v, dict) else
+               _verdict_entry(v[0], v[1], comparisons[v[0]][v[1]], metrics, "", baseline)
+               for v in verdict]
     power_notes = _add_power(comparisons, headline, min_effect, baseline)
     return comparisons, verdict, power_notes
 
@@ -438,6 +459,10 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
             "holm": "p_holm: Holm's step-down adjustment of the Wilcoxon p-values over the "
                     "arms compared with the baseline, per metric (controls the family-wise "
                     "error rate over the arms, per metric)",
+            "simultaneous": "ci_low_adjusted, ci_high_adjusted: Bonferroni simultaneous t "
+                            "interval over the m arms compared with the baseline, per metric "
+                            "(each at level 1 - 0.05/m; m = 1: the plain 95% interval); the "
+                            "verdict is read from it",
             "effect_size": "d_z: mean / sd of the paired differences (NaN with zero spread)",
             "power": f"detectable_difference: smallest true mean difference a two-sided "
                      f"paired t test at level {ALPHA:g} detects with power {POWER:g}, from the "
@@ -471,6 +496,23 @@ def _add_holm(comparisons: dict[str, dict[str, dict[str, Any]]]) -> None:
         adjusted = holm_adjust([comparisons[a][metric]["p_wilcoxon"] for a in arms])
         for arm, p in zip(arms, adjusted):
             comparisons[arm][metric]["p_holm"] = float(p)
+
+
+def _add_simultaneous(comparisons: dict[str, dict[str, dict[str, Any]]]) -> None:
+    """Set every comparison's simultaneous interval over the ``m`` arms compared, per metric
+    (:func:`holonomic.study.stats.bonferroni_interval`): ``ci_low_adjusted``,
+    ``ci_high_adjusted``, ``confidence_adjusted`` (1 - 0.05 / m), ``arms_compared`` (m)
+    and ``includes_zero_adjusted``. The verdict reads this interval."""
+    metrics = {m for comps in comparisons.values() for m in comps}
+    for metric in metrics:
+        arms = [a for a in comparisons if metric in comparisons[a]]
+        for arm in arms:
+            comp = comparisons[arm][metric]
+            low, high, level = bonferroni_interval(comp["differences"], len(arms))
+            comp.update(ci_low_adjusted=low, ci_high_adjusted=high,
+                        confidence_adjusted=level, arms_compared=len(arms),
+                        includes_zero_adjusted=bool(comp.get("zero_spread"))
+                        or not low > 0.0 and not high < 0.0)
 
 
 def _add_power(comparisons: dict[str, dict[str, dict[str, Any]]], headline: str,
