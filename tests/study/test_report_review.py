@@ -74,3 +74,75 @@ def test_verdict_reads_the_simultaneous_interval(tmp_path):
     assert (f"[{comp['ci_low_adjusted']:.4f}, {comp['ci_high_adjusted']:.4f}] (4 arms)"
             in row and "simultaneous interval includes 0" in row)
     assert "Bonferroni" in report.split("## Protocol")[1].split("##")[0]
+
+
+# --- 2, 3: the verdict carries edges and audit alarms; the audit note's direction -------
+
+def _kinetic_message(value, low=0.9e-3, high=1.1e-3, target=1e-3):
+    """A kinetic alarm as holonomic.audit.monitor words it."""
+    return (f"kinetic temperature of 0.weight is {value:.6g} at step 100, outside "
+            f"[{low:.6g}, {high:.6g}] (target {target:g} +- 5 sd, 64 tangent dof, z = "
+            f"{(value - target) / 2e-5:.3g}); the dynamics are not at the target temperature "
+            "(step too large, gradient noise, or not yet equilibrated: raise burn_in)")
+
+
+def _audit(messages):
+    return {"every": 50, "records": 6, "residual_max": 1e-7, "alarm_count": len(messages),
+            "alarms": {"kinetic 0.weight": len(messages)} if messages else {},
+            "first_alarms": list(messages)}
+
+
+def _alarmed_study(tmp_path):
+    from tests.study.test_report_trials import _records, _study
+    records = _records()
+    for record in records.values():
+        if record["arm"] == "hot":  # every run too cold; trial 3's runs also too hot
+            cold = [_kinetic_message(3e-10)]
+            record["hooks"] = {"audit": _audit(
+                cold + ([_kinetic_message(5e-2)] if record["trial"] == 3 else []))}
+        else:
+            record["hooks"] = {"audit": _audit([])}
+    summary = write_outputs(_study(), tmp_path, records, "invented", plots=False)
+    return summary, (tmp_path / "report.md").read_text()
+
+
+def test_verdict_line_carries_edges_and_audit_alarms(tmp_path):
+    summary, report = _alarmed_study(tmp_path)
+    verdict = {v["arm"]: v for v in summary["verdict"]}
+    # adamw chose its smallest strength, the baseline sgd_wd its largest; hot no edge
+    assert verdict["adamw"]["line"].endswith(
+        "(chosen at the edge of its search: strength) "
+        "(sgd_wd chosen at the edge of its search: strength)")
+    assert verdict["adamw"]["edges"] == ["strength"] and verdict["hot"]["edges"] == []
+    assert verdict["hot"]["line"].endswith(
+        "(sgd_wd chosen at the edge of its search: strength) "
+        "(audit: the kinetic temperature missed its target in 12/12 runs)")
+    assert verdict["hot"]["kinetic_alarms"] == {"hot": [12, 12]}
+    assert "audit" not in verdict["adamw"]["line"]
+    assert f"- {verdict['hot']['line']}" in report
+
+
+def test_audit_note_says_too_hot_or_too_cold(tmp_path):
+    summary, report = _alarmed_study(tmp_path)
+    audit = summary["audit"]["hot"]
+    assert (audit["runs_with_kinetic_alarms"], audit["kinetic_too_cold"],
+            audit["kinetic_too_hot"]) == (12, 12, 3)
+    note = next(line for line in report.splitlines() if line.startswith("- hot: kinetic"))
+    assert "12/12 runs (both directions)" in note
+    assert "too hot in 3 (the momenta ran hotter than asked" in note
+    assert "too cold in 12 (the momenta ran colder than asked" in note
+    assert "has not equilibrated" in note and "gradient noise" in note
+    # no longer says every alarm is a run hotter than asked
+    assert "they say the run is hotter than asked" not in report
+
+
+def test_audit_note_names_only_the_direction_seen(tmp_path):
+    from tests.study.test_report_trials import _records, _study
+    records = _records()
+    for record in records.values():
+        record["hooks"] = {"audit": _audit([_kinetic_message(3e-10)] if record["arm"] == "hot"
+                                           else [])}
+    write_outputs(_study(), tmp_path, records, "invented", plots=False)
+    note = next(line for line in (tmp_path / "report.md").read_text().splitlines()
+                if line.startswith("- hot: kinetic"))
+    assert "too cold in 12" in note and "too hot" not in note and "both" not in note

@@ -634,8 +634,44 @@ def _audit_lines(config: Any, audit: dict[str, Any], summary: dict[str, Any]) ->
               "at temperature 0 the kinetic check is skipped, so only the constraints are "
               "checked."]
     if _any_temperature(config, summary):
-        lines[-1] += (" Minibatch gradient noise heats the momenta above the target "
-                      "temperature, so kinetic alarms can fire with small batches: they say the "
-                      "run is hotter than asked, not that the constraints failed.")
+        lines[-1] += (" A kinetic alarm says a run's momenta were not at the temperature "
+                      "asked, not that the constraints failed; which way they missed it "
+                      "matters:")
+        lines += [""] + _kinetic_lines(audit)
+    return lines
+
+
+#: What a kinetic alarm above / below the target's interval means.
+TOO_HOT = ("the momenta ran hotter than asked, from minibatch gradient noise (small "
+           "batches) or too large a step")
+TOO_COLD = ("the momenta ran colder than asked, because the thermostat (the "
+            "friction, or an adaptive thermostat's variable) has not equilibrated within the "
+            "run's length, or the step is too small for the noise to heat them to the target")
+
+
+def _kinetic_lines(audit: dict[str, Any]) -> list[str]:
+    """Per arm with kinetic alarms: in how many runs, and whether too hot, too cold or both
+    (from the recorded alarms: a run record keeps its first 5)."""
+    lines = []
+    for name, arm in audit.items():
+        runs = arm.get("runs_with_kinetic_alarms", 0)
+        if not runs:
+            continue
+        hot, cold = arm.get("kinetic_too_hot", 0), arm.get("kinetic_too_cold", 0)
+        ways = [f"too hot in {hot} ({TOO_HOT})" if hot else "",
+                f"too cold in {cold} ({TOO_COLD})" if cold else ""]
+        ways = [w for w in ways if w]
+        direction = ("; ".join(ways) if ways else
+                     "direction not recorded (records made before it was)")
+        both = " (both directions)" if hot and cold else ""
+        lines.append(f"- {name}: kinetic alarms in {runs}/{arm['audited']} runs{both}: "
+                     f"{direction}.")
+    if not lines:
+        lines.append("- No run raised a kinetic alarm. Too hot would mean minibatch gradient "
+                     "noise or too large a step; too cold, a thermostat not equilibrated in "
+                     "the run's length or too small a step.")
+    else:
+        lines.append("- (From each run's recorded alarms: a run record keeps its first 5; "
+                     "the full list is in its file in `audits/`.)")
     return lines
 

@@ -14,6 +14,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -201,10 +202,31 @@ def mean_interval(values: np.ndarray, confidence: float = 0.95,
             "clipped": (clipped_low, clipped_high) != (float(low), float(high))}
 
 
+#: A kinetic alarm's message (holonomic.audit.monitor): the measured kinetic temperature
+#: and the interval around the target it missed.
+_KINETIC_ALARM = re.compile(r"kinetic temperature of .+? is (?P<value>\S+) at step \d+, "
+                            r"outside \[(?P<low>[^,\]]+), (?P<high>[^\]]+)\]")
+
+
+def kinetic_direction(message: str) -> str | None:
+    """``"hot"`` when a kinetic alarm's message says the measured temperature lay above its
+    interval around the target, ``"cold"`` below it; None for any other alarm."""
+    match = _KINETIC_ALARM.search(message)
+    if match is None:
+        return None
+    try:
+        value, low, high = (float(match[k]) for k in ("value", "low", "high"))
+    except ValueError:
+        return None
+    return "hot" if value > high else "cold" if value < low else None
+
+
 def audit_summary(records: Mapping[str, Any], arms: Sequence[str]) -> dict[str, Any]:
     """Per arm (``arms``, in that order), over all its runs: how many were audited, records,
     alarms by kind, and the largest constraint residual any audit saw (``None`` when the
-    arm constrains nothing)."""
+    arm constrains nothing). Kinetic alarms: ``runs_with_kinetic_alarms``, and
+    ``kinetic_too_hot`` / ``kinetic_too_cold``, the runs whose recorded alarms (a run record
+    keeps its first 5, ``first_alarms``) include one above / below the target's interval."""
     typed = as_records(records)
     out: dict[str, Any] = {}
     for arm in arms:
@@ -228,6 +250,13 @@ def audit_summary(records: Mapping[str, Any], arms: Sequence[str]) -> dict[str, 
             "runs_with_alarms": sum(1 for a in audited if a["alarm_count"]),
             "alarm_count": sum(int(a["alarm_count"]) for a in audited),
             "alarm_kinds": dict(sorted(kinds.items())),
+            "runs_with_kinetic_alarms": sum(1 for a in audited if any(
+                place.startswith("kinetic") and int(count)
+                for place, count in a["alarms"].items())),
+            "kinetic_too_hot": sum(1 for a in audited if "hot" in map(
+                kinetic_direction, a["first_alarms"])),
+            "kinetic_too_cold": sum(1 for a in audited if "cold" in map(
+                kinetic_direction, a["first_alarms"])),
             "residual_max": largest,
             "first_alarm": next((a["first_alarms"][0] for a in audited if a["first_alarms"]),
                                 None),
@@ -362,6 +391,40 @@ def interval_name(m: int) -> str:
     return f"{confidence} simultaneous over {m} arms, Bonferroni"
 
 
+def _qualify_verdict(verdict: list[dict[str, Any]], chosen: Mapping[str, Selection],
+                     audit: Mapping[str, Any], baseline: str) -> None:
+    """Append to each verdict line what undermines it: the settings the arm (or the
+    baseline) chose at the edge of its search, and the arm's (or the baseline's) runs with
+    kinetic-temperature audit alarms. Sets ``edges``, ``baseline_edges`` (keys) and
+    ``kinetic_alarms`` (``{arm: [runs with alarms, runs audited]}``) of each entry."""
+    def edges(arm: str) -> list[str]:
+        sel = chosen.get(arm)
+        return [] if sel is None else [e.key for e in sel.edges]
+
+    def alarms(arm: str) -> tuple[int, int] | None:
+        entry = audit.get(arm) or {}
+        runs = entry.get("runs_with_kinetic_alarms", 0)
+        return (runs, entry["audited"]) if runs else None
+
+    for entry in verdict:
+        mine, theirs = edges(entry["arm"]), edges(baseline)
+        entry["edges"], entry["baseline_edges"] = mine, theirs
+        entry["kinetic_alarms"] = {a: list(alarms(a)) for a in (entry["arm"], baseline)
+                                   if alarms(a)}
+        if entry["reading"] == "no verdict":
+            continue
+        extra = []
+        if mine:
+            extra.append(f"chosen at the edge of its search: {', '.join(mine)}")
+        if theirs:
+            extra.append(f"{baseline} chosen at the edge of its search: {', '.join(theirs)}")
+        for arm, (runs, audited) in entry["kinetic_alarms"].items():
+            whose = "" if arm == entry["arm"] else f"{arm}'s "
+            extra.append(f"audit: {whose or 'the '}kinetic temperature missed its target in "
+                         f"{runs}/{audited} runs")
+        entry["line"] += "".join(f" ({e})" for e in extra)
+
+
 def digits_for(metric: str, comp: dict[str, Any]) -> int:
     """Decimals for a difference: 3 for metrics in [0, 1], else about 3 significant."""
     if metric_range(metric)[1] <= 1.0 and metric_range(metric)[0] >= -1.0:
@@ -433,6 +496,8 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
     grad_evals = sorted({int(r.grad_evals) for r in full if r.grad_evals is not None})
     comparisons, verdict, power_notes = compare_with_baseline(chosen, metrics, baseline,
                                                               min_effect)
+    audit = audit_summary(typed, list(chosen))
+    _qualify_verdict(verdict, chosen, audit, baseline)
     larger = metrics.selection_larger_is_better
     seeds = max((len(sel.seeds) for sel in chosen.values()), default=0)
     return {
@@ -479,7 +544,7 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
         "baseline": baseline,
         "comparisons": comparisons,
         "power_notes": power_notes,
-        "audit": audit_summary(typed, list(chosen)),
+        "audit": audit,
         "ensembles": ensemble_summary(chosen),
         "legacy_records": all(r.legacy for r in typed.values()),
         "halving": {"used": any(sel.budget is not None and sel.budget.rungs
