@@ -15,7 +15,7 @@ from holonomic.study.report import write_outputs
 from holonomic.study.stats import bonferroni_interval
 from tests.study.conftest import tiny_document
 from holonomic.study import parse_config
-from tests.study.fabricate import fabricate
+from tests.study.fabricate import fabricate, fabricate_trials
 
 #: Paired differences whose raw 95% t interval excludes 0 (t = 3.7 on 4 df) but whose
 #: simultaneous interval over 4 arms (t quantile 0.99375 on 4 df, about 4.6) does not.
@@ -146,3 +146,38 @@ def test_audit_note_names_only_the_direction_seen(tmp_path):
     note = next(line for line in (tmp_path / "report.md").read_text().splitlines()
                 if line.startswith("- hot: kinetic"))
     assert "too cold in 12" in note and "too hot" not in note and "both" not in note
+
+
+# --- 5: the budget wording ---------------------------------------------------------------
+
+def test_halving_trials_are_all_started_some_in_full(tmp_path):
+    from tests.study.test_report_trials import _records, _study
+    records = _records(halving={"fraction": 0.5, "keep": {"sgd_wd": [1, 3]}})
+    write_outputs(_study(), tmp_path, records, "invented", plots=False)
+    report = (tmp_path / "report.md").read_text()
+    assert "| sgd_wd | sgd | weight_decay | 4 (2 in full) | 3 |" in report
+    assert "of 4 started" not in report
+
+
+def test_an_arm_with_nothing_to_search_is_the_difference_in_budget(tmp_path):
+    from tests.study.test_report_trials import ARMS, _records, _study
+    arms = dict(ARMS, plain={"regulariser": "none", "optimiser": "sgd",
+                             "trials": [{"lr": 0.05, "momentum": 0.9}]})
+    records = fabricate_trials(arms, seeds=(0, 1, 2))
+    write_outputs(_study(arms=arms), tmp_path, records, "invented", plots=False)
+    line = next(line for line in (tmp_path / "report.md").read_text().splitlines()
+                if line.startswith("- Gradient evaluations per full run"))
+    assert "the same for every arm" in line and "NOT the same" not in line
+    assert "the number of trials differs" in line
+    assert "an arm with nothing to search has one (plain), the others 4 each" in line
+
+
+def test_unequal_trial_counts_among_searching_arms_are_said(tmp_path):
+    from tests.study.test_report_trials import ARMS, _study
+    arms = dict(ARMS, adamw=dict(ARMS["adamw"], trials=ARMS["adamw"]["trials"][:2]))
+    records = fabricate_trials(arms, seeds=(0, 1, 2))
+    write_outputs(_study(arms=arms), tmp_path, records, "invented", plots=False)
+    line = next(line for line in (tmp_path / "report.md").read_text().splitlines()
+                if line.startswith("- Gradient evaluations per full run"))
+    assert "trials started: sgd_wd 4, adamw 2, hot 4" in line
+    assert "NOT given an equal tuning budget" in line

@@ -176,9 +176,34 @@ def _grad_evals_line(summary: dict[str, Any]) -> str:
     if len(per_arm) <= 1 and len(totals) <= 1:
         return (f"- Gradient evaluations per full run: {per_run}; in total per arm: "
                 f"{next(iter(totals), 'unknown')} (identical across arms).")
+    if len(per_arm) <= 1:
+        return _trial_count_line(summary, per_run)
     return (f"- Gradient evaluations per full run: {per_run}. They are NOT the same for every "
             "arm (see \"Budget and chosen setting per arm\"): the arms were not given an "
             "equal budget, so the comparison favours the arm that got more.")
+
+
+def _trial_count_line(summary: dict[str, Any], per_run: list[int]) -> str:
+    """The gradient evaluations per full run are the same for every arm but the totals are
+    not: say what differs (the number of trials or seeds; an arm with nothing to search
+    has one trial)."""
+    arms = {n: a for n, a in summary["arms"].items() if a.get("budget")}
+    fixed = [n for n, a in arms.items() if not a.get("searched")]
+    searching = {n: a["budget"] for n, a in arms.items() if a.get("searched")}
+    line = (f"- Gradient evaluations per full run: {per_run}, the same for every arm; the "
+            "totals per arm differ because the number of trials differs")
+    counts = {(b["trials_started"], len(b["seeds"]), b["grad_evals_total"])
+              for b in searching.values()}
+    if fixed and len(counts) <= 1:
+        trials = next(iter(counts))[0] if counts else None
+        return (line + f": an arm with nothing to search has one ({', '.join(fixed)})"
+                + (f", the others {trials} each" if trials is not None else "")
+                + " (see \"Budget and chosen setting per arm\"). Every chosen setting was "
+                "trained with the same budget per run; only the tuning differs.")
+    started = ", ".join(f"{n} {a['budget']['trials_started']}" for n, a in arms.items())
+    return (line + f" (trials started: {started}; see \"Budget and chosen setting per "
+            "arm\"). The arms that search were NOT given an equal tuning budget, so the "
+            "comparison favours the arm that got more.")
 
 
 def _split_fixed(config: Any) -> str:
@@ -439,7 +464,7 @@ def _budget_lines(summary: dict[str, Any]) -> list[str]:
             continue
         trials = str(budget["trials"])
         if budget["trials_started"] != budget["trials"]:
-            trials = f"{budget['trials']} of {budget['trials_started']} started"
+            trials = f"{budget['trials_started']} ({budget['trials']} in full)"
         per_run = ", ".join(map(str, budget["grad_evals_per_run"])) or "unknown"
         total = budget["grad_evals_total"]
         groups = f" ({len(recipe['groups'])} layer groups)" if recipe["groups"] else ""
