@@ -181,3 +181,51 @@ def test_unequal_trial_counts_among_searching_arms_are_said(tmp_path):
                 if line.startswith("- Gradient evaluations per full run"))
     assert "trials started: sgd_wd 4, adamw 2, hot 4" in line
     assert "NOT given an equal tuning budget" in line
+
+
+# --- 4: selection_vs_strength.png -----------------------------------------------------
+
+def test_strength_plot_reference_only_with_the_same_optimiser(tmp_path):
+    pytest.importorskip("matplotlib")
+    import matplotlib.pyplot as plt
+
+    from holonomic.study.plots import build_figures
+    from holonomic.study.selection import select_trials
+    from tests.study.test_report_trials import ARMS, _study
+    arms = dict(ARMS, none={"regulariser": "none", "optimiser": "adamw",
+                            "trials": [{"lr": 1e-3}, {"lr": 1e-2}]})
+    records = fabricate_trials(arms, seeds=(0, 1, 2))
+    chosen = select_trials(records, "val_accuracy", True, list(arms))
+    figures = build_figures(_study(arms=arms), records, chosen)
+    try:
+        fig = {name: f for name, _, f in figures}["selection_vs_strength.png"]
+        panels = {ax.get_title(): ax for ax in fig.axes}
+        # hot tries one strength only (0.5): no panel; none is the reference, not a panel
+        assert set(panels) == {"sgd_wd", "adamw"}
+        dashed = {title: [line.get_label() for line in ax.get_lines()
+                          if line.get_linestyle() == "--"] for title, ax in panels.items()}
+        # "none" trains with AdamW: its line belongs on adamw's panel only, not sgd_wd's
+        assert dashed == {"adamw": ["none"], "sgd_wd": []}
+    finally:
+        for _, _, f in figures:
+            plt.close(f)
+
+
+def test_no_strength_plot_when_no_arm_varies_its_strength():
+    pytest.importorskip("matplotlib")
+    import matplotlib.pyplot as plt
+
+    from holonomic.study.plots import build_figures
+    from holonomic.study.selection import select_trials
+    from tests.study.test_report_trials import ARMS, _study
+    arms = {"hot": ARMS["hot"], "sgd_wd": dict(ARMS["sgd_wd"], trials=[
+        dict(t, strength=1e-3) for t in ARMS["sgd_wd"]["trials"]])}
+    records = fabricate_trials(arms, seeds=(0, 1, 2))
+    figures = build_figures(_study(arms=arms), records,
+                            select_trials(records, "val_accuracy", True, list(arms)))
+    try:
+        names = [name for name, _, _ in figures]
+        assert "selection_vs_strength.png" not in names and "learning_curves.png" in names
+    finally:
+        for _, _, f in figures:
+            plt.close(f)
