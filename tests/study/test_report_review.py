@@ -229,3 +229,31 @@ def test_no_strength_plot_when_no_arm_varies_its_strength():
     finally:
         for _, _, f in figures:
             plt.close(f)
+
+
+# --- 6: an edge on a setting that made no difference ------------------------------------
+
+def test_edge_with_equal_means_at_both_ends_says_the_setting_made_no_difference(tmp_path):
+    from tests.study.test_report_trials import ARMS, _study
+    arms = {"sgd_wd": ARMS["sgd_wd"],
+            "clip": {"regulariser": "max_norm", "optimiser": "sgd",
+                     "trials": [{"lr": 0.1, "momentum": 0.9, "strength": s}
+                                for s in (1.0, 2.0)]}}
+
+    def quality(arm, trial, settings, seed):  # the clip never binds: strength is inert
+        return 0.7 + 0.01 * seed + (0.01 * trial if arm == "sgd_wd" else 0.0)
+
+    records = fabricate_trials(arms, seeds=(0, 1, 2), quality=quality)
+    summary = write_outputs(_study(arms=arms), tmp_path, records, "invented", plots=False)
+    report = (tmp_path / "report.md").read_text()
+    clip = summary["arms"]["clip"]
+    assert clip["chosen_index"] == 0 and clip["edges"][0]["tied"] is True
+    assert ("- clip: strength = 1, the smallest of the values tried (1 to 2) (the validation "
+            "means of the values tried are equal: the setting made no difference)." in report)
+    # sgd_wd's edge is a real one (trial 3, the best, has the smallest strength)
+    assert [e["tied"] for e in summary["arms"]["sgd_wd"]["edges"]] == [False, False]
+    assert "made no difference" not in next(
+        line for line in report.splitlines() if line.startswith("- sgd_wd: strength"))
+    # the verdict does not call an inert setting an edge
+    assert "clip vs sgd_wd" in summary["verdict"][0]["line"]
+    assert "(chosen at the edge of its search" not in summary["verdict"][0]["line"]

@@ -492,7 +492,10 @@ def _budget_lines(summary: dict[str, Any]) -> list[str]:
         lines += ["Chosen at the edge of what was searched (the smallest or largest value "
                   "tried for that setting in that arm):", ""]
         lines += [f"- {name}: {e['key']} = {e['value']:g}, the {e['side']} of the values "
-                  f"tried ({e['low']:g} to {e['high']:g})." for name, e in edges]
+                  f"tried ({e['low']:g} to {e['high']:g})"
+                  + (" (the validation means of the values tried are equal: the setting "
+                     "made no difference)" if e.get("tied") else "") + "."
+                  for name, e in edges]
         lines += ["", "The best value may lie outside the range searched: widen the range of "
                   "these settings (or say why not) before drawing conclusions. With a few "
                   "trials per arm some trial always holds the smallest and the largest value "

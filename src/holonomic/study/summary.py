@@ -329,7 +329,7 @@ def arm_entries(chosen: Mapping[str, Selection], metrics: StudyMetrics,
             "chosen_settings": dict(sel.settings),
             "chosen_settings_text": _settings_text(sel.settings),
             "edges": [{"key": e.key, "value": e.value, "side": e.side, "low": e.low,
-                       "high": e.high} for e in sel.edges],
+                       "high": e.high, "tied": e.tied} for e in sel.edges],
             "recipe": None if sel.recipe is None else sel.recipe.to_dict(),
             "budget": None if sel.budget is None else sel.budget.to_dict(),
         }
@@ -394,12 +394,13 @@ def interval_name(m: int) -> str:
 def _qualify_verdict(verdict: list[dict[str, Any]], chosen: Mapping[str, Selection],
                      audit: Mapping[str, Any], baseline: str) -> None:
     """Append to each verdict line what undermines it: the settings the arm (or the
-    baseline) chose at the edge of its search, and the arm's (or the baseline's) runs with
+    baseline) chose at the edge of its search (not those whose values made no difference,
+    ``tied``), and the arm's (or the baseline's) runs with
     kinetic-temperature audit alarms. Sets ``edges``, ``baseline_edges`` (keys) and
     ``kinetic_alarms`` (``{arm: [runs with alarms, runs audited]}``) of each entry."""
     def edges(arm: str) -> list[str]:
         sel = chosen.get(arm)
-        return [] if sel is None else [e.key for e in sel.edges]
+        return [] if sel is None else [e.key for e in sel.edges if not e.tied]
 
     def alarms(arm: str) -> tuple[int, int] | None:
         entry = audit.get(arm) or {}
