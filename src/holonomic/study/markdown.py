@@ -101,7 +101,8 @@ def _verdict_lines(summary: dict[str, Any]) -> list[str]:
     lines = [f"**Verdict** (test {_SHORT.get(task['headline'], task['headline'])} of the "
              f"chosen settings, arm minus {baseline} paired by seed: mean difference "
              f"[95% interval, simultaneous over the arms compared with {baseline} "
-             f"(Bonferroni), so that the verdicts hold together]; {'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
+             f"(Bonferroni), so that the verdicts hold together]; "
+             f"{'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
              " is better):", ""]
     lines += [f"- {v['line']}" for v in summary["verdict"]]
     return lines + [""]

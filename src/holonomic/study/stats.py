@@ -10,9 +10,9 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import optimize, stats
 
-__all__ = ["PairedComparison", "bonferroni_interval", "cohens_dz", "comparison_note", "detectable_difference",
-           "expected_calibration_error", "holm_adjust", "paired_comparison", "paired_t_power",
-           "seeds_needed", "wilcoxon_min_p"]
+__all__ = ["PairedComparison", "bonferroni_interval", "cohens_dz", "comparison_note",
+           "detectable_difference", "expected_calibration_error", "holm_adjust",
+           "paired_comparison", "paired_t_power", "seeds_needed", "wilcoxon_min_p"]
 
 #: Power and two-sided level of the power figures (detectable difference, seeds needed).
 POWER = 0.8

@@ -4,8 +4,9 @@ Each arm's chosen trial comes from :mod:`holonomic.study.selection`; everything 
 run records (``{key: dict or RunRecord}``, :mod:`holonomic.study.records`) and
 :class:`~holonomic.study.selection.Selection` objects, never the runner's plan. Every other
 arm is compared with the baseline arm seed by seed (:func:`compare_with_baseline`): mean
-difference with a 95% t interval and a simultaneous (Bonferroni) interval over the arms compared
-(which the verdict reads), Wilcoxon p raw and Holm-adjusted over the arms per metric, Cohen's d_z, the difference detectable with 80% power and, with a ``min_effect``,
+difference with a 95% t interval and a simultaneous (Bonferroni) interval over the arms
+compared (which the verdict reads), Wilcoxon p raw and Holm-adjusted over the arms per
+metric, Cohen's d_z, the difference detectable with 80% power and, with a ``min_effect``,
 the seeds needed to detect it (:mod:`holonomic.study.stats`).
 """
 
