@@ -254,6 +254,9 @@ def test_edge_with_equal_means_at_both_ends_says_the_setting_made_no_difference(
     assert [e["tied"] for e in summary["arms"]["sgd_wd"]["edges"]] == [False, False]
     assert "made no difference" not in next(
         line for line in report.splitlines() if line.startswith("- sgd_wd: strength"))
-    # the verdict does not call an inert setting an edge
+    # the caveats and the verdict do not call an inert setting an edge
+    caveat = next(line for line in report.splitlines()
+                  if line.startswith("- Chosen at the edge of what was searched"))
+    assert "sgd_wd" in caveat and "clip" not in caveat
     assert "clip vs sgd_wd" in summary["verdict"][0]["line"]
     assert "(chosen at the edge of its search" not in summary["verdict"][0]["line"]

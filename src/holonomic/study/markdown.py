@@ -568,7 +568,8 @@ def _caveat_lines(config: Any, summary: dict[str, Any], metrics: StudyMetrics,
              "file; metrics such as balanced accuracy, macro F1 or ROC AUC weigh errors "
              "differently from accuracy, and another choice can pick other settings and "
              "change the ranking.",
-             "- Holm's adjustment corrects over the arms compared, for each metric "
+             "- Holm's adjustment corrects over the arms compared, and so do the "
+             "simultaneous (Bonferroni) intervals the verdict reads, for each metric "
              "separately; nothing corrects over the several metrics, so read one metric (the "
              "headline) as the main result.",
              "- One data set, one model and one training budget: the ranking may change with "
@@ -582,7 +583,8 @@ def _caveat_lines(config: Any, summary: dict[str, Any], metrics: StudyMetrics,
                      "integrator (RATTLE).")
     lines += ["- Test metrics exist for every run in results.csv; only the chosen settings' "
               "test metrics are quoted here, and nothing was chosen with them.", ""]
-    edges = sorted({name for name, arm in summary["arms"].items() if arm.get("edges")},
+    edges = sorted({name for name, arm in summary["arms"].items()
+                    if any(not e.get("tied") for e in arm.get("edges", []))},
                    key=list(summary["arms"]).index)
     if edges:
         lines += ["- Chosen at the edge of what was searched: " + ", ".join(edges) + " (see "
