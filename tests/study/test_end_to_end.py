@@ -72,15 +72,17 @@ def test_cli_study_outputs_are_complete_and_consistent(tmp_path, tiny_config, ti
             low = high = d.mean()
             # no spread (equal up to roundoff): no interval, so no verdict either way
             spread = d.std(ddof=1) > 1e-12 * max(1.0, abs(d.mean()))
-            if spread:
-                low, high = stats.t.interval(0.95, len(d) - 1, loc=d.mean(),
+            m = len(tiny_config.arms) - 1  # arms compared: the verdict's simultaneous
+            if spread:                       # (Bonferroni) interval, level 1 - 0.05 / m
+                low, high = stats.t.interval(1 - 0.05 / m, len(d) - 1, loc=d.mean(),
                                              scale=d.std(ddof=1) / np.sqrt(len(d)))
             reading = ("cannot tell apart" if not spread or low <= 0 <= high else
                        "better" if d.mean() > 0 else "worse")
             note = "" if spread else ("; all 2 paired differences equal: no spread to build "
                                       "an interval from")
             verdict = (f"- {arm.name} vs weight_decay, test accuracy: {reading} "
-                       f"({d.mean():+.3f} [{low:+.3f}, {high:+.3f}], 2 seeds{note})")
+                       f"({d.mean():+.3f} [{low:+.3f}, {high:+.3f}] 95% simultaneous "
+                       f"over {m} arms, Bonferroni, 2 seeds{note})")
             assert verdict in report.split("## Set-up")[0]
     assert "never used to choose" in report and "0.5" in report  # Wilcoxon floor, 2 seeds
     assert "Training rows per run: 64." in report and "all the rest" not in report

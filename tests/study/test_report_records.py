@@ -176,6 +176,27 @@ _REWORDED = ("- No correction for multiple comparisons", "- The max-norm arm cli
              "- Chosen at the edge of its grid:", "- `results.csv`: one row per arm")
 
 
+#: Lines that say how the verdict and the comparisons read their interval (the simultaneous
+#: Bonferroni interval since the review of the report; before, the raw 95% t interval).
+_SIMULTANEOUS = ("**Verdict**", "- Every other arm is compared with the baseline",
+                 "Differences are arm minus")
+
+
+def _outside_comparisons(text, indices=False):
+    """The report's lines (or their indices) but those the simultaneous interval changed:
+    the verdict header and lines, the protocol line on the comparisons, the paired table."""
+    out, in_table = [], False
+    for i, line in enumerate(text.splitlines()):
+        if line.startswith("## "):
+            in_table = line.startswith("## Paired comparison")
+        if in_table and line.startswith("|") or line.startswith(_SIMULTANEOUS):
+            continue
+        if line.startswith("- ") and " vs " in line and ": " in line and line.endswith(")"):
+            continue  # a verdict line
+        out.append(i if indices else line)
+    return out
+
+
 def _walk(old, new, path=""):
     """Keys of ``old`` missing from ``new`` or with another value (new keys are allowed)."""
     if isinstance(old, dict):
@@ -199,22 +220,36 @@ def test_old_records_are_reported_as_before(tmp_path, name, config, records):
     # sentence says "trial" for "grid point"; new keys are added
     old = json.loads((golden / "summary.json").read_text())
     new = json.loads((tmp_path / "summary.json").read_text())
-    assert _walk(old, new) == [f"/protocol/selection: {old['protocol']['selection']!r} -> "
-                               f"{new['protocol']['selection']!r}"]
+    # the verdict now reads the simultaneous (Bonferroni) interval: its interval and lines
+    # changed on purpose; the old (raw) interval is kept beside it
+    changed = _walk(old, new)
+    assert [c for c in changed if not c.startswith("/verdict")] == [
+        f"/protocol/selection: {old['protocol']['selection']!r} -> "
+        f"{new['protocol']['selection']!r}"]
+    for before, after in zip(old["verdict"], new["verdict"], strict=True):
+        if "ci_low" not in before:
+            assert before == after
+            continue
+        comp = new["comparisons"][after["arm"]][after["metric"]]
+        assert (after["ci_low_unadjusted"], after["ci_high_unadjusted"]) == (
+            before["ci_low"], before["ci_high"])
+        assert (after["ci_low"], after["ci_high"]) == (comp["ci_low_adjusted"],
+                                                        comp["ci_high_adjusted"])
     assert "grid point" in old["protocol"]["selection"]
     assert new["arms"]["weight_decay"]["recipe"]["optimiser"] == "langevin"
     # report.md: every line of the old report is still there but the reworded ones
     report = (tmp_path / "report.md").read_text().splitlines()
-    lost = [line for line in (golden / "report.md").read_text().splitlines()
+    lost = [line for line in _outside_comparisons((golden / "report.md").read_text())
             if line not in report]
-    assert sorted(lost) == sorted(line for line in (golden / "report.md").read_text()
-                                  .splitlines() if line.startswith(_REWORDED))
+    assert sorted(lost) == sorted(line for line in _outside_comparisons(
+        (golden / "report.md").read_text()) if line.startswith(_REWORDED))
     assert len(lost) == len(_REWORDED)
     # and what is new is the scope line, the budget section and the reworded lines
     old_lines = set((golden / "report.md").read_text().splitlines())
     start, end = report.index("## Budget and chosen setting per arm"), report.index("## Protocol")
+    kept = set(_outside_comparisons("\n".join(report), indices=True))
     added = [line for i, line in enumerate(report) if line not in old_lines
-             and not start <= i < end]
+             and not start <= i < end and i in kept]
     assert [line for line in added if not line.startswith((
         "What this shows: a tuned comparison", "- Holm's adjustment corrects over the arms",
         "- The max-norm arm clips after each optimiser step",

@@ -179,13 +179,15 @@ def _expected_line(records, config, arm, metric, label, higher_better, summary):
                          [metric] for s in config.seeds])
 
     d = values(arm) - values("weight_decay")
-    # Reference library: scipy.stats.t for the paired 95% interval
-    low, high = stats.t.interval(0.95, len(d) - 1, loc=d.mean(),
-                                 scale=d.std(ddof=1) / math.sqrt(len(d)))
+    m = len(summary["comparisons"])  # arms compared with the baseline
+    # Reference library: scipy.stats.t for the paired interval; the verdict reads the
+    # Bonferroni simultaneous interval over the m arms (t quantile 1 - 0.05 / (2 m))
+    half = stats.t.ppf(1 - 0.05 / (2 * m), len(d) - 1) * d.std(ddof=1) / math.sqrt(len(d))
+    low, high = d.mean() - half, d.mean() + half
     reading = ("cannot tell apart" if low <= 0 <= high else
                "better" if (d.mean() > 0) == higher_better else "worse")
     return (f"{arm} vs weight_decay, {label}: {reading} ({d.mean():+.3f} [{low:+.3f}, "
-            f"{high:+.3f}], {len(d)} seeds)"), reading
+            f"{high:+.3f}] 95% simultaneous over {m} arms, Bonferroni, {len(d)} seeds)"), reading
 
 
 def test_verdict_lines_at_the_top(tmp_path):

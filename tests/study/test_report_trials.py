@@ -192,11 +192,11 @@ def test_report_states_budget_choice_edges_halving_and_scope(written):
     assert "with this model and these 3 seeds" in scope
     # one budget row per arm: optimiser, regulariser, trials, seeds, gradient evaluations
     rows = {line.split(" | ")[0][2:]: line for line in lines
-            if line.startswith("| ") and "trial " in line and " of " in line}
-    assert rows["sgd_wd"] == ("| sgd_wd | sgd | weight_decay | 2 of 4 started | 3 | 6 | "
+            if line.startswith("| ") and "trial " in line and " in full) " in line}
+    assert rows["sgd_wd"] == ("| sgd_wd | sgd | weight_decay | 4 (2 in full) | 3 | 6 | "
                               f"{4 * 3 * 3 + 2 * 3 * 6} | lr, strength | trial 1: lr 0.03, "
                               "momentum 0.9, strength 0.01 |")
-    assert "| adamw | adamw | decoupled_weight_decay | 2 of 4 started | 3 | 6 |" in report
+    assert "| adamw | adamw | decoupled_weight_decay | 4 (2 in full) | 3 | 6 |" in report
     # halving: said, per arm, with what was dropped after what fraction
     assert "Successive halving was used" in report
     assert "- sgd_wd: 2 of 4 trials dropped after 0.5 of the budget." in report
@@ -300,9 +300,10 @@ def test_temperature_scan_is_drawn_listed_and_written(written):
                                    rtol=1e-9)
         ringed = next(l for l in ax.get_lines() if l.get_label().startswith("chosen"))
         assert list(ringed.get_xdata()) == [1e-3]
-        # against strength: one panel per arm with a regulariser, x = each trial's strength
+        # against strength: one panel per arm with a regulariser whose strength varies
+        # (hot tries 0.5 only), x = each trial's strength
         strength = figures["selection_vs_strength.png"].axes
-        assert [a.get_title() for a in strength] == ["sgd_wd", "adamw", "hot"]
+        assert [a.get_title() for a in strength] == ["sgd_wd", "adamw"]
         sgd = next(c for c in strength[0].containers if c.get_label() == "sgd_wd")
         assert sorted(sgd.lines[0].get_xdata()) == [1e-5, 1e-2]  # its two full trials
         assert sgd.lines[0].get_linestyle() == "None"  # lr varies too: points, no line

@@ -13,7 +13,8 @@ from typing import Any
 
 from holonomic.study.selection import StudyMetrics
 from holonomic.study.stats import ALPHA, POWER, comparison_note
-from holonomic.study.summary import DEFAULT_BASELINE, SHORT_NAMES, short_name
+from holonomic.study.summary import (
+    DEFAULT_BASELINE, SHORT_NAMES, adjusted_interval, short_name)
 from holonomic.study.ensemble_report import ensemble_lines
 from holonomic.study.tasks import PARTS, Task, recorded_n_classes
 from holonomic.study.tasks import split_metric_name as _split_name
@@ -58,19 +59,21 @@ def _reading(arm: str, metric: str, comp: dict, metrics: StudyMetrics,
     note = comparison_note(comp)
     if note:
         return f"the data cannot tell them apart ({note})"
-    if comp["includes_zero"]:
-        return "the data cannot tell them apart (the interval includes 0)"
+    low, high, m = adjusted_interval(comp)
+    which = "the simultaneous interval" if m > 1 else "the interval"
+    if not (low > 0.0 or high < 0.0):
+        return f"the data cannot tell them apart ({which} includes 0)"
     prefix, base = _split_name(metric)
     higher = comp["mean_difference"] > 0
     if prefix in ("gap_", "val_gap_"):
         return (f"{arm} has a {'larger' if higher else 'smaller'} gap than {baseline} "
-                "(the interval excludes 0)")
+                f"({which} excludes 0)")
     try:
         good = higher == metrics.higher_is_better(base)
     except KeyError:
         return f"{arm} {'higher' if higher else 'lower'} than {baseline}"
     return (f"{arm} {'better' if good else 'worse'} than {baseline} "
-            f"({'higher' if higher else 'lower'}; the interval excludes 0)")
+            f"({'higher' if higher else 'lower'}; {which} excludes 0)")
 
 
 def _count(values: list[int]) -> str:
@@ -97,7 +100,9 @@ def _verdict_lines(summary: dict[str, Any]) -> list[str]:
         return [f"**Verdict**: no arm to compare with {baseline}.", ""]
     lines = [f"**Verdict** (test {_SHORT.get(task['headline'], task['headline'])} of the "
              f"chosen settings, arm minus {baseline} paired by seed: mean difference "
-             f"[95% t interval]; {'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
+             f"[95% interval, simultaneous over the arms compared with {baseline} "
+             f"(Bonferroni), so that the verdicts hold together]; "
+             f"{'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
              " is better):", ""]
     lines += [f"- {v['line']}" for v in summary["verdict"]]
     return lines + [""]
@@ -172,9 +177,34 @@ def _grad_evals_line(summary: dict[str, Any]) -> str:
     if len(per_arm) <= 1 and len(totals) <= 1:
         return (f"- Gradient evaluations per full run: {per_run}; in total per arm: "
                 f"{next(iter(totals), 'unknown')} (identical across arms).")
+    if len(per_arm) <= 1:
+        return _trial_count_line(summary, per_run)
     return (f"- Gradient evaluations per full run: {per_run}. They are NOT the same for every "
             "arm (see \"Budget and chosen setting per arm\"): the arms were not given an "
             "equal budget, so the comparison favours the arm that got more.")
+
+
+def _trial_count_line(summary: dict[str, Any], per_run: list[int]) -> str:
+    """The gradient evaluations per full run are the same for every arm but the totals are
+    not: say what differs (the number of trials or seeds; an arm with nothing to search
+    has one trial)."""
+    arms = {n: a for n, a in summary["arms"].items() if a.get("budget")}
+    fixed = [n for n, a in arms.items() if not a.get("searched")]
+    searching = {n: a["budget"] for n, a in arms.items() if a.get("searched")}
+    line = (f"- Gradient evaluations per full run: {per_run}, the same for every arm; the "
+            "totals per arm differ because the number of trials differs")
+    counts = {(b["trials_started"], len(b["seeds"]), b["grad_evals_total"])
+              for b in searching.values()}
+    if fixed and len(counts) <= 1:
+        trials = next(iter(counts))[0] if counts else None
+        return (line + f": an arm with nothing to search has one ({', '.join(fixed)})"
+                + (f", the others {trials} each" if trials is not None else "")
+                + " (see \"Budget and chosen setting per arm\"). Every chosen setting was "
+                "trained with the same budget per run; only the tuning differs.")
+    started = ", ".join(f"{n} {a['budget']['trials_started']}" for n, a in arms.items())
+    return (line + f" (trials started: {started}; see \"Budget and chosen setting per "
+            "arm\"). The arms that search were NOT given an equal tuning budget, so the "
+            "comparison favours the arm that got more.")
 
 
 def _split_fixed(config: Any) -> str:
@@ -274,7 +304,12 @@ def _protocol_lines(metrics: StudyMetrics, baseline: str = BASELINE_ARM,
               "(`study.baseline`), seed by seed. Holm p is Holm's step-down adjustment "
               "(Holm 1979) of the Wilcoxon p-values over the arms compared, per metric: it "
               "controls the family-wise error rate (the chance of calling any arm different "
-              "when none is) over the arms, for each metric separately. d_z is the mean "
+              "when none is) over the arms, for each metric separately. The verdict and the "
+              "reading of each comparison use the simultaneous interval: with m arms "
+              "compared with the baseline, each arm's t interval at level 1 - 0.05/m "
+              "(Bonferroni), so that all m intervals hold together with probability at least "
+              "95% (with one arm it is the plain 95% interval); the raw 95% interval is shown "
+              "beside it. d_z is the mean "
               "paired difference over its sd (Cohen's standardised effect size).",
               f"- Power figures: `detectable (80% power)` is the smallest true mean "
               f"difference a two-sided paired t test at level {ALPHA:g} would detect with "
@@ -345,23 +380,26 @@ def report_markdown(config: Any, summary: dict[str, Any], description: str,
     lines += [""] + _chosen_table(summary, metrics)
     lines += ["", f"## Paired comparison against {baseline}", "",
               f"Differences are arm minus {baseline} per seed (chosen settings); 95% t "
-              "interval (scipy.stats.t), two-sided Wilcoxon signed-rank p "
+              "interval (scipy.stats.t) for each arm alone, and the 95% simultaneous "
+              "interval over the arms compared (Bonferroni: each at level 1 - 0.05/m for m "
+              "arms; the reading and the verdict use it), two-sided Wilcoxon signed-rank p "
               "(scipy.stats.wilcoxon) raw and Holm-adjusted over the arms (per metric), "
               "Cohen's d_z, and the smallest difference detectable with 80% power (see "
               "Protocol).", "",
-              "| arm | metric | mean difference [95% CI] | Wilcoxon p | Holm p | d_z | "
-              "detectable (80% power) | reading |",
-              "|---|---|---|---|---|---|---|---|"]
+              "| arm | metric | mean difference [95% CI] | simultaneous 95% CI (Bonferroni) "
+              "| Wilcoxon p | Holm p | d_z | detectable (80% power) | reading |",
+              "|---|---|---|---|---|---|---|---|---|"]
     for name, comps in summary["comparisons"].items():
         for metric, comp in comps.items():
             lines.append(
                 f"| {name} | {metric} | {_num(comp['mean_difference'])} "
                 f"[{_num(comp['ci_low'])}, {_num(comp['ci_high'])}] | "
-                f"{_num(comp['p_wilcoxon'], 3)} | {_num(comp.get('p_holm'), 3)} | "
+                f"{_simultaneous_cell(comp)} | {_num(comp['p_wilcoxon'], 3)} | "
+                f"{_num(comp.get('p_holm'), 3)} | "
                 f"{_num(comp.get('d_z'), 2)} | {_num(comp.get('detectable_difference'))} | "
                 f"{_reading(name, metric, comp, metrics, baseline)} |")
     if not summary["comparisons"]:
-        lines.append("| - | - | - | - | - | - | - | no comparison possible |")
+        lines.append("| - | - | - | - | - | - | - | - | no comparison possible |")
     if summary.get("power_notes"):
         lines += [""] + [f"- {note['line']}" for note in summary["power_notes"]]
     lines += ensemble_lines(summary["ensembles"])
@@ -369,6 +407,14 @@ def report_markdown(config: Any, summary: dict[str, Any], description: str,
     lines += _caveat_lines(config, summary, metrics, n_seeds)
     lines += _file_lines(summary, plots)
     return "\n".join(lines) + "\n"
+
+
+def _simultaneous_cell(comp: dict) -> str:
+    """``[low, high] (m arms)``: the Bonferroni interval of the paired table."""
+    if "ci_low_adjusted" not in comp:
+        return "n/a"
+    low, high, m = adjusted_interval(comp)
+    return f"[{_num(low)}, {_num(high)}] ({m} arm{'s' if m != 1 else ''})"
 
 
 def _scope_lines(summary: dict[str, Any], n_seeds: int) -> list[str]:
@@ -419,7 +465,7 @@ def _budget_lines(summary: dict[str, Any]) -> list[str]:
             continue
         trials = str(budget["trials"])
         if budget["trials_started"] != budget["trials"]:
-            trials = f"{budget['trials']} of {budget['trials_started']} started"
+            trials = f"{budget['trials_started']} ({budget['trials']} in full)"
         per_run = ", ".join(map(str, budget["grad_evals_per_run"])) or "unknown"
         total = budget["grad_evals_total"]
         groups = f" ({len(recipe['groups'])} layer groups)" if recipe["groups"] else ""
@@ -447,7 +493,10 @@ def _budget_lines(summary: dict[str, Any]) -> list[str]:
         lines += ["Chosen at the edge of what was searched (the smallest or largest value "
                   "tried for that setting in that arm):", ""]
         lines += [f"- {name}: {e['key']} = {e['value']:g}, the {e['side']} of the values "
-                  f"tried ({e['low']:g} to {e['high']:g})." for name, e in edges]
+                  f"tried ({e['low']:g} to {e['high']:g})"
+                  + (" (the validation means of the values tried are equal: the setting "
+                     "made no difference)" if e.get("tied") else "") + "."
+                  for name, e in edges]
         lines += ["", "The best value may lie outside the range searched: widen the range of "
                   "these settings (or say why not) before drawing conclusions. With a few "
                   "trials per arm some trial always holds the smallest and the largest value "
@@ -519,7 +568,8 @@ def _caveat_lines(config: Any, summary: dict[str, Any], metrics: StudyMetrics,
              "file; metrics such as balanced accuracy, macro F1 or ROC AUC weigh errors "
              "differently from accuracy, and another choice can pick other settings and "
              "change the ranking.",
-             "- Holm's adjustment corrects over the arms compared, for each metric "
+             "- Holm's adjustment corrects over the arms compared, and so do the "
+             "simultaneous (Bonferroni) intervals the verdict reads, for each metric "
              "separately; nothing corrects over the several metrics, so read one metric (the "
              "headline) as the main result.",
              "- One data set, one model and one training budget: the ranking may change with "
@@ -533,7 +583,8 @@ def _caveat_lines(config: Any, summary: dict[str, Any], metrics: StudyMetrics,
                      "integrator (RATTLE).")
     lines += ["- Test metrics exist for every run in results.csv; only the chosen settings' "
               "test metrics are quoted here, and nothing was chosen with them.", ""]
-    edges = sorted({name for name, arm in summary["arms"].items() if arm.get("edges")},
+    edges = sorted({name for name, arm in summary["arms"].items()
+                    if any(not e.get("tied") for e in arm.get("edges", []))},
                    key=list(summary["arms"]).index)
     if edges:
         lines += ["- Chosen at the edge of what was searched: " + ", ".join(edges) + " (see "
@@ -614,8 +665,44 @@ def _audit_lines(config: Any, audit: dict[str, Any], summary: dict[str, Any]) ->
               "at temperature 0 the kinetic check is skipped, so only the constraints are "
               "checked."]
     if _any_temperature(config, summary):
-        lines[-1] += (" Minibatch gradient noise heats the momenta above the target "
-                      "temperature, so kinetic alarms can fire with small batches: they say the "
-                      "run is hotter than asked, not that the constraints failed.")
+        lines[-1] += (" A kinetic alarm says a run's momenta were not at the temperature "
+                      "asked, not that the constraints failed; which way they missed it "
+                      "matters:")
+        lines += [""] + _kinetic_lines(audit)
+    return lines
+
+
+#: What a kinetic alarm above / below the target's interval means.
+TOO_HOT = ("the momenta ran hotter than asked, from minibatch gradient noise (small "
+           "batches) or too large a step")
+TOO_COLD = ("the momenta ran colder than asked, because the thermostat (the "
+            "friction, or an adaptive thermostat's variable) has not equilibrated within the "
+            "run's length, or the step is too small for the noise to heat them to the target")
+
+
+def _kinetic_lines(audit: dict[str, Any]) -> list[str]:
+    """Per arm with kinetic alarms: in how many runs, and whether too hot, too cold or both
+    (from the recorded alarms: a run record keeps its first 5)."""
+    lines = []
+    for name, arm in audit.items():
+        runs = arm.get("runs_with_kinetic_alarms", 0)
+        if not runs:
+            continue
+        hot, cold = arm.get("kinetic_too_hot", 0), arm.get("kinetic_too_cold", 0)
+        ways = [f"too hot in {hot} ({TOO_HOT})" if hot else "",
+                f"too cold in {cold} ({TOO_COLD})" if cold else ""]
+        ways = [w for w in ways if w]
+        direction = ("; ".join(ways) if ways else
+                     "direction not recorded (records made before it was)")
+        both = " (both directions)" if hot and cold else ""
+        lines.append(f"- {name}: kinetic alarms in {runs}/{arm['audited']} runs{both}: "
+                     f"{direction}.")
+    if not lines:
+        lines.append("- No run raised a kinetic alarm. Too hot would mean minibatch gradient "
+                     "noise or too large a step; too cold, a thermostat not equilibrated in "
+                     "the run's length or too small a step.")
+    else:
+        lines.append("- (From each run's recorded alarms: a run record keeps its first 5; "
+                     "the full list is in its file in `audits/`.)")
     return lines
 

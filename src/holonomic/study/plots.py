@@ -123,10 +123,11 @@ def _scan_axis(ax, xs) -> None:
 
 
 def _against(plt, panels, key: str, metric: str, ylabel: str, title: str, colours,
-             reference=None, force_log: bool = False):
+             reference=None, force_log: bool = False, reference_on=None):
     """One panel per ``(arm, trials, selection)``: ``metric`` mean ± se over seeds against
     setting ``key`` per trial (a line when only ``key`` varies, else points), the chosen
-    trial ringed; ``reference``: a dashed line ``(label, value)``."""
+    trial ringed; ``reference``: a dashed line ``(label, value)``, on the panels of the arms
+    in ``reference_on`` (None: every panel)."""
     fig, axes = plt.subplots(1, max(1, len(panels)), figsize=(3.6 * max(1, len(panels)), 3.2),
                              squeeze=False)
     for ax, (arm, trials, sel) in zip(axes[0], panels):
@@ -143,7 +144,8 @@ def _against(plt, panels, key: str, metric: str, ylabel: str, title: str, colour
             ax.plot([xs[pick]], [means[pick]], marker="o", markersize=13,
                     markerfacecolor="none", markeredgecolor=colour, markeredgewidth=1.5,
                     linestyle="none", label=f"chosen ({xs[pick]:g})")
-        if reference is not None and math.isfinite(reference[1]):
+        if (reference is not None and math.isfinite(reference[1])
+                and (reference_on is None or arm in reference_on)):
             ax.axhline(reference[1], color=colours.get(reference[0], arm_colour(reference[0])),
                        linestyle="--", linewidth=1, label=reference[0])
         if force_log:
@@ -160,10 +162,13 @@ def _against(plt, panels, key: str, metric: str, ylabel: str, title: str, colour
 
 
 def _strength_panels(trials, chosen):
-    """Arms drawn against strength: every arm whose recipe has a regulariser other than
-    ``none`` and whose trials record a strength; and the unregularised arm (one trial, or
-    its chosen trial) as the reference ``(name, mean)`` of ``metric``."""
-    panels, reference = [], None
+    """``(panels, reference, reference_on)``. Panels: every arm whose recipe has a
+    regulariser other than ``none`` and whose trials record a strength that varies between
+    them (an arm tried at one strength has no curve to draw). Reference: the unregularised
+    arm's trial (its only one, or its chosen one) as ``(name, trial)``; ``reference_on``:
+    the panel arms with the unregularised arm's optimiser (a reference with another
+    optimiser compares more than the regulariser; legacy runs all share one)."""
+    panels, reference, optimiser = [], None, None
     for arm, sel in chosen.items():
         mine = list(trials.get(arm, {}).values())
         if not mine:
@@ -173,20 +178,28 @@ def _strength_panels(trials, chosen):
                 pick = _chosen_trial(mine, sel)
                 reference = (arm, mine[0] if len(mine) == 1 else
                              None if pick is None else mine[pick])
+                optimiser = sel.recipe.optimiser
             continue
-        if all("strength" in t.settings for t in mine):
+        strengths = {float(t.settings["strength"]) for t in mine if "strength" in t.settings}
+        if all("strength" in t.settings for t in mine) and len(strengths) > 1:
             panels.append((arm, mine, sel))
-    return panels, reference
+    reference_on = {arm for arm, _, sel in panels
+                    if sel.recipe is None or sel.recipe.optimiser == optimiser}
+    return panels, reference, reference_on
 
 
 def _against_strength(plt, trials, chosen, metric: str, ylabel: str, title: str, colours):
-    """One panel per tuned arm: ``metric`` mean ± se over seeds against strength, the
-    chosen point ringed; the unregularised arm's mean as a dashed line."""
-    panels, reference = _strength_panels(trials, chosen)
+    """One panel per arm whose strength varies: ``metric`` mean ± se over seeds against
+    strength, the chosen point ringed; the unregularised arm's mean as a dashed line on the
+    panels of the arms with its optimiser. None when no arm varies its strength."""
+    panels, reference, reference_on = _strength_panels(trials, chosen)
+    if not panels:
+        return None
     line = None
     if reference is not None and reference[1] is not None:
         line = (reference[0], float(_mean_se(reference[1].values(metric))[0]))
-    return _against(plt, panels, "strength", metric, ylabel, title, colours, line)
+    return _against(plt, panels, "strength", metric, ylabel, title, colours, line,
+                    reference_on=reference_on)
 
 
 def temperature_arms(trials, chosen) -> list[tuple[str, list[TrialRuns], Any]]:
@@ -304,8 +317,9 @@ def build_figures(config: Any, records: dict, chosen: dict,
     out = [
         ("selection_vs_strength.png",
          f"mean validation metric used for the choice ({selection}, {better}) against "
-         "strength per arm, ± standard error over seeds, chosen point ringed, the "
-         "unregularised arm dashed",
+         "strength per arm whose strength varies, ± standard error over seeds, chosen "
+         "point ringed, the unregularised arm dashed on the panels of the arms with its "
+         "optimiser",
          _against_strength(plt, trials, chosen, selection, f"{selection} (mean ± se)",
                            f"Selection metric ({selection}) against strength", colours)),
     ]
@@ -336,7 +350,7 @@ def build_figures(config: Any, records: dict, chosen: dict,
                 "mean row norm of the hidden weights and constraint residual per epoch "
                 "of the chosen settings (zero residuals are not drawn on the log axis)",
                 _weights(plt, chosen, colours)))
-    return out
+    return [entry for entry in out if entry[2] is not None]  # no arm varies its strength
 
 
 def write_plots(config: Any, records: dict, chosen: dict, out_dir: Path,

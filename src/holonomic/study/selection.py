@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from collections import defaultdict
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
@@ -24,7 +24,7 @@ from holonomic.study.records import Recipe, RunRecord, as_records
 from holonomic.study.tasks import Task, recorded_n_classes
 
 __all__ = ["ArmBudget", "Edge", "Rung", "Selection", "StudyMetrics", "TrialRuns",
-           "arm_budget", "edge_flags", "group_trials", "read_metrics", "select_trials",
+           "arm_budget", "edge_flags", "group_trials", "tie_edges", "read_metrics", "select_trials",
            "searched_keys"]
 
 
@@ -209,6 +209,9 @@ class Edge:
     side: str
     low: float
     high: float
+    #: The validation means of the trials at the two ends (``low`` and ``high``) are all
+    #: equal: the setting made no difference over the range tried (:func:`tie_edges`).
+    tied: bool = False
 
 
 def edge_flags(tried: Iterable[Mapping[str, Any]], chosen: Mapping[str, Any],
@@ -226,6 +229,23 @@ def edge_flags(tried: Iterable[Mapping[str, Any]], chosen: Mapping[str, Any],
         if value in (values[0], values[-1]):
             out.append(Edge(key, value, "smallest" if value == values[0] else "largest",
                             values[0], values[-1]))
+    return tuple(out)
+
+
+def tie_edges(edges: Iterable[Edge], trials: Sequence[Any], means: Sequence[float]
+              ) -> tuple[Edge, ...]:
+    """``edges`` with ``tied`` set where the validation means (``means``, one per trial of
+    ``trials``, which have ``settings``) of every trial at the smallest and the largest value
+    of the key are finite and equal: the setting made no difference there (e.g. a clip that
+    never binds), so the edge says nothing about where to search."""
+    out = []
+    for edge in edges:
+        ends = [float(m) for t, m in zip(trials, means)
+                if edge.key in t.settings and float(t.settings[edge.key]) in (edge.low,
+                                                                                edge.high)]
+        tied = (len(ends) > 1 and all(math.isfinite(m) for m in ends)
+                and max(ends) - min(ends) <= 1e-12 * max(1.0, abs(max(ends))))
+        out.append(replace(edge, tied=bool(tied)))
     return tuple(out)
 
 
@@ -372,7 +392,8 @@ def select_trials(records: Mapping[str, Any], selection: str, larger_is_better: 
             strength=None if pick is None else pick.strength, validation_means=means,
             trials=tuple(mine), settings={} if pick is None else dict(pick.settings),
             searched=searched,
-            edges=() if pick is None else edge_flags(tried, pick.settings, searched),
+            edges=() if pick is None else tie_edges(
+                edge_flags(tried, pick.settings, searched), list(mine.values()), means),
             recipe=runs[0].recipe if runs else None,
             budget=arm_budget(runs) if runs else None,
             runs=() if pick is None else pick.runs, tried=tried,

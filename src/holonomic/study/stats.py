@@ -10,9 +10,9 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import optimize, stats
 
-__all__ = ["PairedComparison", "cohens_dz", "comparison_note", "detectable_difference",
-           "expected_calibration_error", "holm_adjust", "paired_comparison", "paired_t_power",
-           "seeds_needed", "wilcoxon_min_p"]
+__all__ = ["PairedComparison", "bonferroni_interval", "cohens_dz", "comparison_note",
+           "detectable_difference", "expected_calibration_error", "holm_adjust",
+           "paired_comparison", "paired_t_power", "seeds_needed", "wilcoxon_min_p"]
 
 #: Power and two-sided level of the power figures (detectable difference, seeds needed).
 POWER = 0.8
@@ -174,6 +174,33 @@ def cohens_dz(differences: np.ndarray) -> float:
     if sd <= ZERO_SPREAD_TOLERANCE * max(1.0, abs(mean)):
         return math.nan
     return mean / sd
+
+
+def bonferroni_interval(differences, m: int, alpha: float = ALPHA
+                        ) -> tuple[float, float, float]:
+    r"""Simultaneous (Bonferroni) t interval for the mean of paired ``differences`` when
+    ``m`` such intervals are read together: ``(low, high, level)`` with level
+    :math:`1 - \alpha / m` and :math:`\bar d \pm t_{n-1, 1 - \alpha/(2m)}\, s_d/\sqrt n`
+    (scipy.stats.t). All ``m`` intervals cover their true means together with probability
+    at least :math:`1 - \alpha` under any dependence (Bonferroni's inequality); ``m = 1``
+    is the plain :math:`1 - \alpha` interval. With no spread (as in
+    :func:`paired_comparison`) the interval is ``[d, d]``; NaN with fewer than 2 values.
+
+    Reference: Bonferroni simultaneous confidence intervals, e.g. Miller, *Simultaneous
+    Statistical Inference*, 2nd ed. (1981), ch. 1 (from memory).
+    """
+    d = np.asarray(differences, dtype=np.float64)
+    if m < 1:
+        raise ValueError(f"m must be >= 1, got {m}")
+    level = 1.0 - alpha / m
+    n = d.size
+    if n < 2:
+        return math.nan, math.nan, level
+    mean, sd = float(d.mean()), float(d.std(ddof=1))
+    if sd <= ZERO_SPREAD_TOLERANCE * max(1.0, abs(mean)):
+        return mean, mean, level
+    low, high = stats.t.interval(level, n - 1, loc=mean, scale=sd / math.sqrt(n))
+    return float(low), float(high), level
 
 
 def holm_adjust(p_values) -> np.ndarray:

@@ -4,7 +4,8 @@ Each arm's chosen trial comes from :mod:`holonomic.study.selection`; everything 
 run records (``{key: dict or RunRecord}``, :mod:`holonomic.study.records`) and
 :class:`~holonomic.study.selection.Selection` objects, never the runner's plan. Every other
 arm is compared with the baseline arm seed by seed (:func:`compare_with_baseline`): mean
-difference with a 95% t interval, Wilcoxon p raw and Holm-adjusted over the arms per
+difference with a 95% t interval and a simultaneous (Bonferroni) interval over the arms
+compared (which the verdict reads), Wilcoxon p raw and Holm-adjusted over the arms per
 metric, Cohen's d_z, the difference detectable with 80% power and, with a ``min_effect``,
 the seeds needed to detect it (:mod:`holonomic.study.stats`).
 """
@@ -14,6 +15,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -23,8 +25,8 @@ from holonomic.study.ensemble_report import ensemble_metric_names, ensemble_summ
 from holonomic.study.records import RunRecord, as_records
 from holonomic.study.selection import Selection, StudyMetrics
 from holonomic.study.stats import (
-    ALPHA, MAX_SEEDS, POWER, comparison_note, holm_adjust, paired_comparison, seeds_needed,
-    wilcoxon_min_p)
+    ALPHA, MAX_SEEDS, POWER, bonferroni_interval, comparison_note, holm_adjust,
+    paired_comparison, seeds_needed, wilcoxon_min_p)
 from holonomic.study.tasks import PARTS, metric_range
 from holonomic.study.tasks import split_metric_name as _split_name
 
@@ -201,10 +203,31 @@ def mean_interval(values: np.ndarray, confidence: float = 0.95,
             "clipped": (clipped_low, clipped_high) != (float(low), float(high))}
 
 
+#: A kinetic alarm's message (holonomic.audit.monitor): the measured kinetic temperature
+#: and the interval around the target it missed.
+_KINETIC_ALARM = re.compile(r"kinetic temperature of .+? is (?P<value>\S+) at step \d+, "
+                            r"outside \[(?P<low>[^,\]]+), (?P<high>[^\]]+)\]")
+
+
+def kinetic_direction(message: str) -> str | None:
+    """``"hot"`` when a kinetic alarm's message says the measured temperature lay above its
+    interval around the target, ``"cold"`` below it; None for any other alarm."""
+    match = _KINETIC_ALARM.search(message)
+    if match is None:
+        return None
+    try:
+        value, low, high = (float(match[k]) for k in ("value", "low", "high"))
+    except ValueError:
+        return None
+    return "hot" if value > high else "cold" if value < low else None
+
+
 def audit_summary(records: Mapping[str, Any], arms: Sequence[str]) -> dict[str, Any]:
     """Per arm (``arms``, in that order), over all its runs: how many were audited, records,
     alarms by kind, and the largest constraint residual any audit saw (``None`` when the
-    arm constrains nothing)."""
+    arm constrains nothing). Kinetic alarms: ``runs_with_kinetic_alarms``, and
+    ``kinetic_too_hot`` / ``kinetic_too_cold``, the runs whose recorded alarms (a run record
+    keeps its first 5, ``first_alarms``) include one above / below the target's interval."""
     typed = as_records(records)
     out: dict[str, Any] = {}
     for arm in arms:
@@ -228,6 +251,13 @@ def audit_summary(records: Mapping[str, Any], arms: Sequence[str]) -> dict[str, 
             "runs_with_alarms": sum(1 for a in audited if a["alarm_count"]),
             "alarm_count": sum(int(a["alarm_count"]) for a in audited),
             "alarm_kinds": dict(sorted(kinds.items())),
+            "runs_with_kinetic_alarms": sum(1 for a in audited if any(
+                place.startswith("kinetic") and int(count)
+                for place, count in a["alarms"].items())),
+            "kinetic_too_hot": sum(1 for a in audited if "hot" in map(
+                kinetic_direction, a["first_alarms"])),
+            "kinetic_too_cold": sum(1 for a in audited if "cold" in map(
+                kinetic_direction, a["first_alarms"])),
             "residual_max": largest,
             "first_alarm": next((a["first_alarms"][0] for a in audited if a["first_alarms"]),
                                 None),
@@ -300,7 +330,7 @@ def arm_entries(chosen: Mapping[str, Selection], metrics: StudyMetrics,
             "chosen_settings": dict(sel.settings),
             "chosen_settings_text": _settings_text(sel.settings),
             "edges": [{"key": e.key, "value": e.value, "side": e.side, "low": e.low,
-                       "high": e.high} for e in sel.edges],
+                       "high": e.high, "tied": e.tied} for e in sel.edges],
             "recipe": None if sel.recipe is None else sel.recipe.to_dict(),
             "budget": None if sel.budget is None else sel.budget.to_dict(),
         }
@@ -329,19 +359,72 @@ def _verdict_entry(arm: str, metric: str, comp: dict[str, Any] | None,
         return {"arm": arm, "metric": metric, "reading": "no verdict",
                 "line": f"{arm} vs {baseline}, {label}: no verdict ({why})"}
     note = comparison_note(comp)
-    if note or comp["ci_low"] <= 0.0 <= comp["ci_high"]:
+    low, high, m = adjusted_interval(comp)
+    if note or low <= 0.0 <= high:
         reading = "cannot tell apart"
     else:
         arm_higher = comp["mean_difference"] > 0
         reading = "better" if arm_higher == metrics.higher_is_better(base) else "worse"
     digits = digits_for(metric, comp)
     line = (f"{arm} vs {baseline}, {label}: {reading} "
-            f"({comp['mean_difference']:+.{digits}f} [{comp['ci_low']:+.{digits}f}, "
-            f"{comp['ci_high']:+.{digits}f}], {comp['n']} seeds"
-            + (f"; {note}" if note else "") + ")")
+            f"({comp['mean_difference']:+.{digits}f} [{low:+.{digits}f}, {high:+.{digits}f}] "
+            f"{interval_name(m)}, {comp['n']} seeds" + (f"; {note}" if note else "") + ")")
     return {"arm": arm, "metric": metric, "reading": reading,
-            "mean_difference": comp["mean_difference"], "ci_low": comp["ci_low"],
-            "ci_high": comp["ci_high"], "n": comp["n"], "line": line}
+            "mean_difference": comp["mean_difference"], "ci_low": low, "ci_high": high,
+            "ci_low_unadjusted": comp["ci_low"], "ci_high_unadjusted": comp["ci_high"],
+            "arms_compared": m, "n": comp["n"], "line": line}
+
+
+def adjusted_interval(comp: Mapping[str, Any]) -> tuple[float, float, int]:
+    """``(low, high, m)``: a comparison's simultaneous (Bonferroni) interval over the ``m``
+    arms compared; a comparison dict made before it existed gives its raw interval, m 1."""
+    if "ci_low_adjusted" in comp:
+        return comp["ci_low_adjusted"], comp["ci_high_adjusted"], int(comp["arms_compared"])
+    return comp["ci_low"], comp["ci_high"], 1
+
+
+def interval_name(m: int) -> str:
+    """How the verdict names its interval: ``"95% t interval"`` for one arm compared,
+    ``"95% simultaneous over 4 arms, Bonferroni"`` for several."""
+    confidence = f"{100 * (1 - ALPHA):g}%"
+    if m <= 1:
+        return f"{confidence} t interval"
+    return f"{confidence} simultaneous over {m} arms, Bonferroni"
+
+
+def _qualify_verdict(verdict: list[dict[str, Any]], chosen: Mapping[str, Selection],
+                     audit: Mapping[str, Any], baseline: str) -> None:
+    """Append to each verdict line what undermines it: the settings the arm (or the
+    baseline) chose at the edge of its search (not those whose values made no difference,
+    ``tied``), and the arm's (or the baseline's) runs with
+    kinetic-temperature audit alarms. Sets ``edges``, ``baseline_edges`` (keys) and
+    ``kinetic_alarms`` (``{arm: [runs with alarms, runs audited]}``) of each entry."""
+    def edges(arm: str) -> list[str]:
+        sel = chosen.get(arm)
+        return [] if sel is None else [e.key for e in sel.edges if not e.tied]
+
+    def alarms(arm: str) -> tuple[int, int] | None:
+        entry = audit.get(arm) or {}
+        runs = entry.get("runs_with_kinetic_alarms", 0)
+        return (runs, entry["audited"]) if runs else None
+
+    for entry in verdict:
+        mine, theirs = edges(entry["arm"]), edges(baseline)
+        entry["edges"], entry["baseline_edges"] = mine, theirs
+        entry["kinetic_alarms"] = {a: list(alarms(a)) for a in (entry["arm"], baseline)
+                                   if alarms(a)}
+        if entry["reading"] == "no verdict":
+            continue
+        extra = []
+        if mine:
+            extra.append(f"chosen at the edge of its search: {', '.join(mine)}")
+        if theirs:
+            extra.append(f"{baseline} chosen at the edge of its search: {', '.join(theirs)}")
+        for arm, (runs, audited) in entry["kinetic_alarms"].items():
+            whose = "" if arm == entry["arm"] else f"{arm}'s "
+            extra.append(f"audit: {whose or 'the '}kinetic temperature missed its target in "
+                         f"{runs}/{audited} runs")
+        entry["line"] += "".join(f" ({e})" for e in extra)
 
 
 def digits_for(metric: str, comp: dict[str, Any]) -> int:
@@ -393,9 +476,12 @@ def compare_with_baseline(chosen: Mapping[str, Selection], metrics: StudyMetrics
         for metric in metrics.compared:
             result = paired_comparison(sel.values(metric), base.values(metric))
             comparisons[name][metric] = result.to_dict()
-        verdict += [_verdict_entry(name, m, comparisons[name][m], metrics, "", baseline)
-                    for m in judged]
+        verdict += [(name, m) for m in judged]
     _add_holm(comparisons)
+    _add_simultaneous(comparisons)
+    verdict = [v if isinstance(v, dict) else
+               _verdict_entry(v[0], v[1], comparisons[v[0]][v[1]], metrics, "", baseline)
+               for v in verdict]
     power_notes = _add_power(comparisons, headline, min_effect, baseline)
     return comparisons, verdict, power_notes
 
@@ -412,6 +498,8 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
     grad_evals = sorted({int(r.grad_evals) for r in full if r.grad_evals is not None})
     comparisons, verdict, power_notes = compare_with_baseline(chosen, metrics, baseline,
                                                               min_effect)
+    audit = audit_summary(typed, list(chosen))
+    _qualify_verdict(verdict, chosen, audit, baseline)
     larger = metrics.selection_larger_is_better
     seeds = max((len(sel.seeds) for sel in chosen.values()), default=0)
     return {
@@ -438,6 +526,10 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
             "holm": "p_holm: Holm's step-down adjustment of the Wilcoxon p-values over the "
                     "arms compared with the baseline, per metric (controls the family-wise "
                     "error rate over the arms, per metric)",
+            "simultaneous": "ci_low_adjusted, ci_high_adjusted: Bonferroni simultaneous t "
+                            "interval over the m arms compared with the baseline, per metric "
+                            "(each at level 1 - 0.05/m; m = 1: the plain 95% interval); the "
+                            "verdict is read from it",
             "effect_size": "d_z: mean / sd of the paired differences (NaN with zero spread)",
             "power": f"detectable_difference: smallest true mean difference a two-sided "
                      f"paired t test at level {ALPHA:g} detects with power {POWER:g}, from the "
@@ -454,7 +546,7 @@ def summary_numbers(records: Mapping[str, Any], chosen: Mapping[str, Selection],
         "baseline": baseline,
         "comparisons": comparisons,
         "power_notes": power_notes,
-        "audit": audit_summary(typed, list(chosen)),
+        "audit": audit,
         "ensembles": ensemble_summary(chosen),
         "legacy_records": all(r.legacy for r in typed.values()),
         "halving": {"used": any(sel.budget is not None and sel.budget.rungs
@@ -471,6 +563,23 @@ def _add_holm(comparisons: dict[str, dict[str, dict[str, Any]]]) -> None:
         adjusted = holm_adjust([comparisons[a][metric]["p_wilcoxon"] for a in arms])
         for arm, p in zip(arms, adjusted):
             comparisons[arm][metric]["p_holm"] = float(p)
+
+
+def _add_simultaneous(comparisons: dict[str, dict[str, dict[str, Any]]]) -> None:
+    """Set every comparison's simultaneous interval over the ``m`` arms compared, per metric
+    (:func:`holonomic.study.stats.bonferroni_interval`): ``ci_low_adjusted``,
+    ``ci_high_adjusted``, ``confidence_adjusted`` (1 - 0.05 / m), ``arms_compared`` (m)
+    and ``includes_zero_adjusted``. The verdict reads this interval."""
+    metrics = {m for comps in comparisons.values() for m in comps}
+    for metric in metrics:
+        arms = [a for a in comparisons if metric in comparisons[a]]
+        for arm in arms:
+            comp = comparisons[arm][metric]
+            low, high, level = bonferroni_interval(comp["differences"], len(arms))
+            comp.update(ci_low_adjusted=low, ci_high_adjusted=high,
+                        confidence_adjusted=level, arms_compared=len(arms),
+                        includes_zero_adjusted=bool(comp.get("zero_spread"))
+                        or not low > 0.0 and not high < 0.0)
 
 
 def _add_power(comparisons: dict[str, dict[str, dict[str, Any]]], headline: str,
