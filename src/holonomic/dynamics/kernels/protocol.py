@@ -47,6 +47,13 @@ class Kernel(Protocol):
     kernel then computes it).  ``group_states`` holds the param groups'
     state (e.g. the thermostat friction); new values come back as
     :class:`GroupResult` by group index.
+
+    A kernel with a true ``can_commit`` attribute also accepts
+    ``run(inputs, group_states, commit=True)``, which the transaction passes
+    only when ``inputs`` are the whole step: the kernel then computes every
+    input (declining none) and, when every flag holds, may write the step
+    at once (its results' ``apply`` then only returns the stored values);
+    when a flag fails it writes nothing.
     """
 
     name: str
