@@ -254,17 +254,18 @@ class NativeKernel:
             lib = native_kernel()
             table = _table(items, momenta)
             n_items = lib.holonomic_items(table, len(items))
+            n = len(items)
             cached = self._cache = (key, dtype, table, (ctypes.c_double * (6 * max(n_items, 1)))(),
                                     int(sum(u.position.numel() for u in items) >= _PARALLEL_MIN),
                                     getattr(lib, f"holonomic_step_{_DTYPES[dtype]}"),
-                                    getattr(lib, f"holonomic_write_{_DTYPES[dtype]}"))
-        _, _, table, coef, parallel, check, write = cached
+                                    getattr(lib, f"holonomic_write_{_DTYPES[dtype]}"),
+                                    # flags and energies: read within the step that fills them
+                                    (ctypes.c_int8 * n)(), (ctypes.c_double * n)())
+        _, _, table, coef, parallel, check, write, ok, kinetic = cached
         for slot, u in zip(table, items):  # new tensors each step after zero_grad(set_to_none=True)
             slot.g = u.grad.data_ptr()
             slot.x = u.noise[0].data_ptr() if u.noise else None
         n = len(items)
-        ok = (ctypes.c_int8 * n)()
-        kinetic = (ctypes.c_double * n)()
         threads = torch.get_num_threads()
         status = check(table, n, coef, ok, kinetic, threads, parallel, int(commit))
         if status < 0:

@@ -27,11 +27,22 @@ class Layout:
     dense: bool
 
 
+_LAYOUTS: dict[tuple[torch.Size, bool], Layout] = {}
+
+
 def layout_of(p: Tensor, grad: Tensor, momentum: Tensor | None) -> Layout:
+    """The :class:`Layout` of one parameter's step inputs (one shared object per shape and
+    density: a step asks for it per parameter)."""
     dense = (p.is_contiguous() and grad.is_contiguous() and grad.dtype == p.dtype and grad.shape == p.shape
              and (momentum is None or (momentum.is_contiguous() and momentum.dtype == p.dtype
                                        and momentum.shape == p.shape and momentum.device == p.device)))
-    return Layout(tuple(p.shape), dense)
+    key = (p.shape, dense)
+    layout = _LAYOUTS.get(key)
+    if layout is None:
+        if len(_LAYOUTS) >= 4096:  # many shapes (e.g. a shape per step): keep the memory bounded
+            _LAYOUTS.clear()
+        layout = _LAYOUTS[key] = Layout(tuple(p.shape), dense)
+    return layout
 
 
 @runtime_checkable
