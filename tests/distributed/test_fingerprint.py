@@ -64,5 +64,20 @@ def test_fingerprint_reads_and_changes_nothing() -> None:
     opt = holonomic.Langevin(m.parameters(), step=0.1, temperature=1.0, seed=1)
     before = [p.clone() for p in m.parameters()]
     replica_fingerprint(opt)
-    assert opt._generators == {} and len(opt.state) == 0
+    assert opt.device_generators() == {} and len(opt.state) == 0
     assert all(torch.equal(p, q) for p, q in zip(m.parameters(), before))
+
+
+def test_device_generators_are_the_live_generators_in_a_new_dict() -> None:
+    opt = holonomic.Langevin(model().parameters(), step=0.1, temperature=1.0, seed=3)
+    assert opt.device_generators() == {}
+    cpu = opt.generator(torch.device("cpu"))
+    found = opt.device_generators()
+    assert list(found) == ["cpu"] and found["cpu"] is cpu
+    found.clear()  # a new dict: the integrator keeps its generators
+    assert opt.device_generators()["cpu"] is cpu
+
+
+def test_fingerprint_of_another_optimizer_has_no_generators() -> None:
+    sgd = torch.optim.SGD(model().parameters(), lr=0.1)
+    assert torch.equal(replica_fingerprint(sgd), replica_fingerprint(torch.optim.SGD(model().parameters(), lr=0.1)))

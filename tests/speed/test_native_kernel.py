@@ -39,9 +39,9 @@ def native_calls(monkeypatch):
     calls = []
     real = native.NativeKernel.run
 
-    def counted(self, *args):
+    def counted(self, *args, **kwargs):
         calls.append(1)
-        return real(self, *args)
+        return real(self, *args, **kwargs)
 
     monkeypatch.setattr(native.NativeKernel, "run", counted)
     return calls
@@ -217,3 +217,86 @@ def test_unwritable_cache_builds_in_a_temporary_directory(native_calls, monkeypa
         assert not list(Path("/proc").glob("baoab-*"))
     finally:
         native.native_kernel.cache_clear()
+
+
+class _CountingLibrary:
+    """The loaded kernel library, counting the calls of its ``holonomic_step_*`` and
+    ``holonomic_write_*`` functions (by name)."""
+
+    def __init__(self, lib):
+        self._lib = lib
+        self.calls: list[str] = []
+
+    def __getattr__(self, name):
+        real = getattr(self._lib, name)
+        if not name.startswith(("holonomic_step_", "holonomic_write_")):
+            return real
+
+        def counted(*args):
+            self.calls.append(name.split("_")[1])
+            return real(*args)
+
+        return counted
+
+
+@pytest.fixture
+def counting_library(native_calls, monkeypatch):
+    counting = _CountingLibrary(native.native_kernel())
+    monkeypatch.setattr(native, "native_kernel", lambda: counting)
+    return counting
+
+
+def _step_pair(model_fn, backend="native", grad_fill=None):
+    torch.manual_seed(0)
+    models = [model_fn(), None]
+    models[1] = copy.deepcopy(models[0])
+    x = torch.randn(8, 16, generator=torch.Generator().manual_seed(1), dtype=torch.float64)
+    opts = [hn.Langevin.from_sgd(models[0].parameters(), lr=0.01, momentum=0.9, backend=backend),
+            hn.Langevin.from_sgd(models[1].parameters(), lr=0.01, momentum=0.9, backend="reference")]
+    for model, opt in zip(models, opts):
+        for _ in range(2):
+            opt.zero_grad()
+            model(x).square().mean().backward()
+            opt.step()
+    return models, opts
+
+
+def _fixed_norm_net():
+    net = nn.Sequential(nn.Linear(16, 16), nn.Tanh(), nn.Linear(16, 4)).double()
+    hn.constrain(net[0], weight=hn.FixedNorm(1.0))
+    return net
+
+
+def test_a_step_on_the_native_kernel_alone_is_one_native_call(counting_library):
+    models, opts = _step_pair(_fixed_norm_net)
+    assert {k for _, k in opts[0].last_info.kernels} == {"native"}
+    assert counting_library.calls == ["step", "step"]  # checked and written in one call per step
+    for a, b in zip(models[0].parameters(), models[1].parameters()):
+        assert torch.allclose(a, b, rtol=0, atol=1e-12)
+
+
+def test_a_failing_flag_on_the_native_kernel_alone_writes_nothing(counting_library):
+    net = _fixed_norm_net()
+    opt = hn.Langevin.from_sgd(net.parameters(), lr=0.01, momentum=0.9, backend="native")
+    for p in net.parameters():
+        p.grad = torch.ones_like(p)
+    net[0].weight.grad[3, 2] = float("nan")
+    before = [p.detach().clone() for p in net.parameters()]
+    with pytest.raises(hn.IntegrationError, match="non-finite gradient"):
+        opt.step()
+    assert counting_library.calls == ["step"]
+    assert all(torch.equal(a, b) for a, b in zip(before, net.parameters()))
+    assert len(opt.state) == 0
+
+
+def test_a_step_shared_with_another_kernel_writes_the_native_part_at_commit(counting_library):
+    def mixed():
+        net = nn.Sequential(nn.Linear(16, 16), nn.Tanh(), nn.Linear(16, 4)).double()
+        hn.constrain(net[0], weight=hn.Orthonormal())  # square: the square-orthonormal kernel
+        return net
+
+    models, opts = _step_pair(mixed)
+    assert {k for _, k in opts[0].last_info.kernels} == {"native", "square-orthonormal"}
+    assert counting_library.calls == ["step", "write", "step", "write"]
+    for a, b in zip(models[0].parameters(), models[1].parameters()):
+        assert torch.allclose(a, b, rtol=0, atol=1e-10)

@@ -105,7 +105,8 @@ def _randomness_bytes(optimizer: torch.optim.Optimizer) -> bytes:
     """Seed and generator states, keyed by device *type*: ``cuda:0`` on rank 0
     and ``cuda:1`` on rank 1 are the same stream when their states agree."""
     parts = [f"seed={getattr(optimizer, 'seed', None)!r}".encode()]
-    generators: dict[str, torch.Generator] = getattr(optimizer, "_generators", {})
+    device_generators = getattr(optimizer, "device_generators", None)  # a holonomic integrator
+    generators: dict[str, torch.Generator] = device_generators() if callable(device_generators) else {}
     for key in sorted(generators, key=lambda k: (torch.device(k).type, k)):
         state = generators[key].get_state()
         parts.append(torch.device(key).type.encode() + b":" + state.numpy().tobytes())

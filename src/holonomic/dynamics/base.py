@@ -180,6 +180,13 @@ class HolonomicIntegrator(torch.optim.Optimizer):
             self._generators[key] = gen
         return gen
 
+    def device_generators(self) -> dict[str, torch.Generator]:
+        """The integrator's generators made so far, by device (``str(device)``, e.g.
+        ``"cpu"``, ``"cuda:0"``): the live generators in a new dict (adding to or
+        removing from it changes nothing here).  A device's generator is made, from
+        ``seed``, at the first step that draws noise on it (:meth:`generator`)."""
+        return dict(self._generators)
+
     def state_dict(self) -> dict[str, Any]:
         """As ``torch.optim.Optimizer.state_dict`` plus ``"integrator"`` (the
         class name, checked by :meth:`load_state_dict`), ``"seed"`` and the

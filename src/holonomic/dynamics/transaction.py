@@ -271,8 +271,14 @@ def run_step(
         by_kernel.setdefault(id(kernel), (kernel, []))[1].append(i)
     try:
         declined: list[int] = []
+        # one kernel for the whole step: its flags are all the step's flags, so a kernel that
+        # can (``can_commit``) writes in the same call when they all hold
+        whole = len(by_kernel) == 1
         for kernel, members in by_kernel.values():
-            out, groups = kernel.run([inputs[i] for i in members], states)
+            if whole and getattr(kernel, "can_commit", False):
+                out, groups = kernel.run(inputs, states, commit=True)
+            else:
+                out, groups = kernel.run([inputs[i] for i in members], states)
             group_results.update(groups)
             for i, r in zip(members, out):
                 if r is None:

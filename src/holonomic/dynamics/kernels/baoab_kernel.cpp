@@ -6,15 +6,19 @@
 // Built at first use by holonomic/dynamics/kernels/native.py with the system C++
 // compiler and loaded with ctypes: plain C ABI, no Python or torch headers.
 //
-// Two calls, two passes over memory (each one OpenMP parallel region):
+// Two passes over memory (each one OpenMP parallel region):
 //   check: per constrained vector the Gram entries of w, q = m - h scale g (and
 //      the noise x) accumulated in double, the closed-form coefficients (double,
 //      kept in the caller's coef array), the kinetic energy and a validity flag;
 //      per chunk of an unconstrained parameter its new values computed, checked
 //      and their energy summed.  Writes nothing but coef, ok and kinetic.
-//   write: called by the step transaction only once every flag of the step
-//      holds: the new position and momentum of each parameter whose ok is 1,
-//      written in place.
+//   write: the new position and momentum of each parameter whose ok is 1,
+//      written in place, only once every flag of the step holds.
+// holonomic_step_* runs the check and, with commit = 1 and every flag of its
+// parameters holding, the write in the same call (the step transaction asks for
+// this only when these parameters are the whole step, so that their flags are
+// all the step's flags); holonomic_write_* is the write alone, called by the
+// transaction at commit otherwise.
 
 #include <cmath>
 #include <cstdint>
@@ -273,11 +277,17 @@ struct Step {
 };
 
 template <typename T>
-int check_step(const Param* params, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
-               int64_t parallel) {
+int check_and_commit(const Param* params, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
+                     int64_t parallel, int64_t commit) {
   try {
-    return Step<T>(params, n, coef).check_all(ok, kinetic, threads, parallel);
-  } catch (...) {  // the work list could not be allocated: nothing was computed
+    Step<T> step(params, n, coef);
+    const int all = step.check_all(ok, kinetic, threads, parallel);
+    if (all && commit) {
+      step.write_all(ok, threads, parallel);
+      return 2;
+    }
+    return all;
+  } catch (...) {  // the work list could not be allocated: nothing was computed or written
     return -1;
   }
 }
@@ -296,7 +306,7 @@ int write_step(const Param* params, int64_t n, double* coef, const int8_t* ok, i
 
 extern "C" {
 
-int holonomic_abi_version() { return 2; }
+int holonomic_abi_version() { return 3; }
 
 int64_t holonomic_param_size() { return static_cast<int64_t>(sizeof(Param)); }
 
@@ -307,14 +317,17 @@ int64_t holonomic_items(const Param* params, int64_t n) {
   return count;
 }
 
-int holonomic_check_float(const Param* p, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
-                          int64_t parallel) {
-  return check_step<float>(p, n, coef, ok, kinetic, threads, parallel);
+// Check, and with commit = 1 write when every flag holds: returns 2 when written, 1 when
+// every flag holds but nothing was written (commit = 0), 0 when a flag failed (nothing
+// written), -1 when out of memory (nothing written).
+int holonomic_step_float(const Param* p, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
+                         int64_t parallel, int64_t commit) {
+  return check_and_commit<float>(p, n, coef, ok, kinetic, threads, parallel, commit);
 }
 
-int holonomic_check_double(const Param* p, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
-                           int64_t parallel) {
-  return check_step<double>(p, n, coef, ok, kinetic, threads, parallel);
+int holonomic_step_double(const Param* p, int64_t n, double* coef, int8_t* ok, double* kinetic, int64_t threads,
+                          int64_t parallel, int64_t commit) {
+  return check_and_commit<double>(p, n, coef, ok, kinetic, threads, parallel, commit);
 }
 
 int holonomic_write_float(const Param* p, int64_t n, double* coef, const int8_t* ok, int64_t threads,

@@ -5,9 +5,12 @@ library (``baoab_kernel.cpp``, shipped with the package) loaded with ctypes;
 Gram entries and coefficients are accumulated in double precision for float32
 parameters too.  A step is two calls: ``check`` reads the weights, momenta,
 gradients (and noise) once and computes the per-vector coefficients, kinetic
-energies and ok flags, writing nothing else; ``write``, called by the step
-transaction at commit, reads them again and writes the new weights and momenta
-in place.  Both run on ``torch.get_num_threads()`` OpenMP threads (serially
+energies and ok flags, writing nothing else; ``write`` reads them again and
+writes the new weights and momenta in place.  When this kernel's parameters
+are the whole step (``run(..., commit=True)``, see
+:func:`holonomic.dynamics.transaction.run_step`) both passes are one call that
+writes only if every flag holds; otherwise the transaction calls ``write`` at
+commit.  Both passes run on ``torch.get_num_threads()`` OpenMP threads (serially
 below 32768 numbers).
 
 **Building.**  Compiled at first use with ``$CXX`` or the first of ``c++``,
@@ -46,7 +49,7 @@ __all__ = ["NativeKernel", "native_kernel", "NativeBuildError"]
 
 _SOURCE = Path(__file__).with_name("baoab_kernel.cpp")
 _LOCK = threading.Lock()
-_ABI_VERSION = 2
+_ABI_VERSION = 3
 _PARALLEL_MIN = 32768
 _DTYPES = {torch.float32: "float", torch.float64: "double"}
 
@@ -172,9 +175,9 @@ def _load() -> ctypes.CDLL | NativeBuildError:
         lib.holonomic_items.argtypes = [ctypes.c_void_p, ctypes.c_int64]
         lib.holonomic_items.restype = ctypes.c_int64
         for name in _DTYPES.values():
-            check = getattr(lib, f"holonomic_check_{name}")
+            check = getattr(lib, f"holonomic_step_{name}")
             check.argtypes = [ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_void_p,
-                              ctypes.c_int64, ctypes.c_int64]
+                              ctypes.c_int64, ctypes.c_int64, ctypes.c_int64]
             check.restype = ctypes.c_int
             write = getattr(lib, f"holonomic_write_{name}")
             write.argtypes = [ctypes.c_void_p, ctypes.c_int64, ctypes.c_void_p, ctypes.c_void_p, ctypes.c_int64,
@@ -205,9 +208,13 @@ class NativeKernel:
 
     The argument table is kept between steps while every pointer, shape,
     constraint and setting in it stays the same (a cache of this kernel
-    object, which belongs to one optimizer and is not copied with it)."""
+    object, which belongs to one optimizer and is not copied with it).
+
+    ``can_commit``: :meth:`run` accepts ``commit=True`` (see
+    :class:`holonomic.dynamics.kernels.protocol.Kernel`)."""
 
     name = "native"
+    can_commit = True
 
     def __init__(self) -> None:
         self._cache: tuple | None = None
@@ -218,17 +225,26 @@ class NativeKernel:
                 and (isinstance(constraint, Unconstrained)
                      or (isinstance(constraint, FixedNorm) and len(layout.shape) >= 1)))
 
-    def run(self, inputs: Sequence[StepInput], group_states: Mapping[int, Mapping[str, Tensor]]
-            ) -> tuple[list[StepResult | None], dict[int, GroupResult]]:
+    def run(self, inputs: Sequence[StepInput], group_states: Mapping[int, Mapping[str, Tensor]], *,
+            commit: bool = False) -> tuple[list[StepResult | None], dict[int, GroupResult]]:
+        """Compute every input (none is declined).  ``commit=True``: ``inputs`` are the
+        whole step, so when every flag holds the new values are written in the same
+        native call (the results' ``apply`` then only returns them); when a flag fails
+        nothing is written, as with ``commit=False``."""
         results: list[StepResult | None] = [None] * len(inputs)
+        first = inputs[0].position.dtype if inputs else None
+        if all(u.position.dtype == first for u in inputs):  # the usual case: one dtype, one table
+            self._run(first, list(inputs), list(range(len(inputs))), results, commit)
+            return results, {}
         by_dtype: dict[torch.dtype, list[int]] = {}
         for i, u in enumerate(inputs):
             by_dtype.setdefault(u.position.dtype, []).append(i)
-        for dtype, members in by_dtype.items():
-            self._run(dtype, [inputs[i] for i in members], members, results)
+        for dtype, members in by_dtype.items():  # several tables: their flags are not all the step's
+            self._run(dtype, [inputs[i] for i in members], members, results, False)
         return results, {}
 
-    def _run(self, dtype: torch.dtype, items: list[StepInput], members: list[int], results: list) -> None:
+    def _run(self, dtype: torch.dtype, items: list[StepInput], members: list[int], results: list,
+             commit: bool) -> None:
         momenta = [u.momentum if u.momentum is not None
                    else torch.zeros_like(u.position, memory_format=torch.contiguous_format) for u in items]
         key = [(u.position.data_ptr(), m.data_ptr(), not u.noise, u.position.shape, u.constraint, u.settings,
@@ -238,23 +254,25 @@ class NativeKernel:
             lib = native_kernel()
             table = _table(items, momenta)
             n_items = lib.holonomic_items(table, len(items))
+            n = len(items)
             cached = self._cache = (key, dtype, table, (ctypes.c_double * (6 * max(n_items, 1)))(),
                                     int(sum(u.position.numel() for u in items) >= _PARALLEL_MIN),
-                                    getattr(lib, f"holonomic_check_{_DTYPES[dtype]}"),
-                                    getattr(lib, f"holonomic_write_{_DTYPES[dtype]}"))
-        _, _, table, coef, parallel, check, write = cached
+                                    getattr(lib, f"holonomic_step_{_DTYPES[dtype]}"),
+                                    getattr(lib, f"holonomic_write_{_DTYPES[dtype]}"),
+                                    # flags and energies: read within the step that fills them
+                                    (ctypes.c_int8 * n)(), (ctypes.c_double * n)())
+        _, _, table, coef, parallel, check, write, ok, kinetic = cached
         for slot, u in zip(table, items):  # new tensors each step after zero_grad(set_to_none=True)
             slot.g = u.grad.data_ptr()
             slot.x = u.noise[0].data_ptr() if u.noise else None
         n = len(items)
-        ok = (ctypes.c_int8 * n)()
-        kinetic = (ctypes.c_double * n)()
         threads = torch.get_num_threads()
-        if check(table, n, coef, ok, kinetic, threads, parallel) < 0:
+        status = check(table, n, coef, ok, kinetic, threads, parallel, int(commit))
+        if status < 0:
             raise MemoryError("the native BAOAB kernel could not allocate its per-row scratch")
         # keep the inputs alive until the write (the table holds raw pointers into them)
         held = (items, momenta)
-        written = []
+        written = [held] if status == 2 else []  # 2: every flag held and the step was written
 
         def write_all() -> None:
             if not written:

@@ -27,11 +27,22 @@ class Layout:
     dense: bool
 
 
+_LAYOUTS: dict[tuple[torch.Size, bool], Layout] = {}
+
+
 def layout_of(p: Tensor, grad: Tensor, momentum: Tensor | None) -> Layout:
+    """The :class:`Layout` of one parameter's step inputs (one shared object per shape and
+    density: a step asks for it per parameter)."""
     dense = (p.is_contiguous() and grad.is_contiguous() and grad.dtype == p.dtype and grad.shape == p.shape
              and (momentum is None or (momentum.is_contiguous() and momentum.dtype == p.dtype
                                        and momentum.shape == p.shape and momentum.device == p.device)))
-    return Layout(tuple(p.shape), dense)
+    key = (p.shape, dense)
+    layout = _LAYOUTS.get(key)
+    if layout is None:
+        if len(_LAYOUTS) >= 4096:  # many shapes (e.g. a shape per step): keep the memory bounded
+            _LAYOUTS.clear()
+        layout = _LAYOUTS[key] = Layout(tuple(p.shape), dense)
+    return layout
 
 
 @runtime_checkable
@@ -47,6 +58,13 @@ class Kernel(Protocol):
     kernel then computes it).  ``group_states`` holds the param groups'
     state (e.g. the thermostat friction); new values come back as
     :class:`GroupResult` by group index.
+
+    A kernel with a true ``can_commit`` attribute also accepts
+    ``run(inputs, group_states, commit=True)``, which the transaction passes
+    only when ``inputs`` are the whole step: the kernel then computes every
+    input (declining none) and, when every flag holds, may write the step
+    at once (its results' ``apply`` then only returns the stored values);
+    when a flag fails it writes nothing.
     """
 
     name: str
