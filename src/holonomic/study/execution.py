@@ -140,11 +140,12 @@ def _warn_other_versions(records: dict[str, dict], out_dir: str | Path) -> None:
     both versions. A warning, not a refusal: the runs stay usable for a report."""
     import holonomic
 
-    others = sorted({str(r.get("holonomic_version", "unrecorded")) for r in records.values()}
+    others = sorted({str(r.get("holonomic_version", "")) for r in records.values()}
                     - {holonomic.__version__})
     if others:
+        named = [f"holonomic {v}" if v else "a version that was not recorded" for v in others]
         warnings.warn(
-            f"{str(out_dir)!r} holds runs made by holonomic {', '.join(others)}, this is "
+            f"{str(out_dir)!r} holds runs made by {' and '.join(named)}, this is "
             f"{holonomic.__version__}; new runs would be mixed with them. For a study made "
             "by one version, use a new --out directory", UserWarning, stacklevel=3)
 
