@@ -9,7 +9,7 @@ import torch
 import holonomic as hn
 from scipy import special
 
-from holonomic import FixedNorm, IntegrationError, Langevin, Orthonormal, constrain, residuals
+from holonomic import FixedNorm, IntegrationError, Langevin, Orthonormal, constrain
 from holonomic.sampling import AdaptiveLangevin
 
 DTYPE = torch.float64

@@ -160,7 +160,7 @@ def test_halving_trials_are_all_started_some_in_full(tmp_path):
 
 
 def test_an_arm_with_nothing_to_search_is_the_difference_in_budget(tmp_path):
-    from tests.study.test_report_trials import ARMS, _records, _study
+    from tests.study.test_report_trials import ARMS, _study
     arms = dict(ARMS, plain={"regulariser": "none", "optimiser": "sgd",
                              "trials": [{"lr": 0.05, "momentum": 0.9}]})
     records = fabricate_trials(arms, seeds=(0, 1, 2))

@@ -33,7 +33,7 @@ import tempfile
 import threading
 from functools import lru_cache
 from pathlib import Path
-from typing import Any, Mapping, Sequence
+from typing import Mapping, Sequence
 
 import torch
 from torch import Tensor
