@@ -20,7 +20,7 @@ from holonomic.geometry import (
 from holonomic.sampling import AdaptiveLangevin
 from holonomic.audit import Audit, repair
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"
 
 __all__ = [
     "Constraint",

@@ -186,3 +186,22 @@ def test_adaptive_failure_names_the_parameter_with_the_bad_gradient(bad):
     assert err.value.parameter == bad
     _assert_unchanged(before, net, opt)
     assert opt.thermostat_friction() == friction
+
+
+def test_a_non_finite_group_state_names_its_own_group():
+    # the second group's thermostat mass is so small that its friction overflows: the error
+    # names group 1 and one of its parameters, and nothing changes
+    torch.manual_seed(0)
+    first, second = torch.nn.Linear(3, 3), torch.nn.Linear(3, 3)
+    opt = hn.AdaptiveLangevin([{"params": first.parameters()},
+                               {"params": second.parameters(), "thermostat_mass": 1e-320}],
+                              lr=0.01, momentum=0.9, temperature=1e-3)
+    x = torch.randn(4, 3)
+    (first(x).sum() + second(x).pow(2).sum()).backward()
+    before = [p.detach().clone() for p in [*first.parameters(), *second.parameters()]]
+    with pytest.raises(hn.IntegrationError) as caught:
+        opt.step()
+    assert caught.value.group == 1 and caught.value.parameter.startswith("group 1")
+    after = [*first.parameters(), *second.parameters()]
+    assert all(torch.equal(a, b) for a, b in zip(before, after))
+    assert not opt.state[next(second.parameters())]

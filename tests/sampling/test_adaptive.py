@@ -249,3 +249,27 @@ def test_adaptive_flag_is_checked():
         hn.AdaptiveLangevin(model.parameters(), lr=0.01, adaptive="no")
     with pytest.raises(ValueError, match="temperature"):
         hn.AdaptiveLangevin(model.parameters(), lr=0.01, temperature=0.0)
+
+
+def test_state_dict_saved_before_the_adaptive_key_loads_and_adapts():
+    # a dict saved before groups had 'adaptive' (the first release) adapted: it loads with
+    # adaptive=True and continues exactly as the dict that has the key
+    model = _fixed_norm_model()
+    opt = hn.AdaptiveLangevin(model.parameters(), lr=0.01, momentum=0.9, temperature=0.05,
+                              seed=3)
+    _trajectory(model, opt, steps=5)
+    saved = opt.state_dict()
+    old = {**saved, "param_groups": [{k: v for k, v in g.items() if k != "adaptive"}
+                                     for g in saved["param_groups"]]}
+    ends = []
+    for state in (saved, old):
+        copy = _fixed_norm_model()
+        with torch.no_grad():
+            for p, q in zip(copy.parameters(), model.parameters()):
+                p.copy_(q)
+        resumed = hn.AdaptiveLangevin(copy.parameters(), lr=0.01, momentum=0.9,
+                                      temperature=0.05, seed=3)
+        resumed.load_state_dict(state)
+        assert resumed.param_groups[0]["adaptive"] is True
+        ends.append(_trajectory(copy, resumed, steps=5))
+    assert torch.equal(ends[0], ends[1])

@@ -260,3 +260,18 @@ def test_edge_with_equal_means_at_both_ends_says_the_setting_made_no_difference(
     assert "sgd_wd" in caveat and "clip" not in caveat
     assert "clip vs sgd_wd" in summary["verdict"][0]["line"]
     assert "(chosen at the edge of its search" not in summary["verdict"][0]["line"]
+
+
+def test_tied_edge_needs_a_trial_at_each_end():
+    # two trials at the low end with equal means and none at the high end (e.g. dropped by
+    # halving) say nothing about whether the setting mattered: not tied
+    from types import SimpleNamespace
+
+    from holonomic.study.selection import Edge, tie_edges
+
+    edge = Edge("strength", 0.5, "smallest", 0.5, 2.0)
+    trials = [SimpleNamespace(settings={"strength": 0.5, "lr": lr}) for lr in (0.01, 0.1)]
+    assert tie_edges([edge], trials, [0.9, 0.9])[0].tied is False
+    trials.append(SimpleNamespace(settings={"strength": 2.0, "lr": 0.05}))
+    assert tie_edges([edge], trials, [0.9, 0.9, 0.9])[0].tied is True
+    assert tie_edges([edge], trials, [0.9, 0.9, 0.8])[0].tied is False

@@ -210,6 +210,7 @@ class HolonomicIntegrator(torch.optim.Optimizer):
                 parameter; the message names the parameter and the mismatch,
                 and nothing is loaded.
         """
+        state_dict = self._with_later_settings(state_dict)
         self._check_state_dict(state_dict)
         state_dict = dict(state_dict)
         state_dict.pop("integrator", None)
@@ -222,6 +223,21 @@ class HolonomicIntegrator(torch.optim.Optimizer):
         self._generators = {}
         for key, gen_state in generators.items():
             self.generator(torch.device(key)).set_state(gen_state.to("cpu", torch.uint8))
+
+    #: Group settings a class gained after state dicts were first saved, with the value an
+    #: older dict implies (filled in by :meth:`_with_later_settings` when loading).
+    _SETTINGS_ADDED_LATER: dict[str, Any] = {}
+
+    def _with_later_settings(self, state_dict: Any) -> Any:
+        """``state_dict`` with each saved param group given the settings of
+        :attr:`_SETTINGS_ADDED_LATER` it lacks (a dict saved before they existed), so it
+        loads with the behaviour it was saved with; anything else is returned unchanged."""
+        groups = state_dict.get("param_groups") if isinstance(state_dict, dict) else None
+        if not self._SETTINGS_ADDED_LATER or not isinstance(groups, list):
+            return state_dict
+        filled = [{**self._SETTINGS_ADDED_LATER, **g} if isinstance(g, dict) else g
+                  for g in groups]
+        return {**state_dict, "param_groups": filled}
 
     #: Keys of the per-parameter state (``self.state[p]``) that this class
     #: keeps; a loaded state with other keys comes from another optimizer.

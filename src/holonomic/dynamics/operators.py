@@ -6,7 +6,10 @@ so that a step can be abandoned without changing anything.  Group operators
 act on the phases of all parameters of a param group and on the group's
 state (e.g. a thermostat friction).  The schemes
 (:mod:`holonomic.dynamics.schemes`) are tables of ``(operator name,
-fraction of the step)`` pairs run by :func:`run_scheme` (the reference kernel).
+fraction of the step)`` pairs; the reference kernel
+(:mod:`holonomic.dynamics.kernels.reference`) runs a table over a whole param
+group, group operators included; :func:`run_scheme` applies the per-parameter
+operators of a table to one phase (for use outside an optimizer).
 
 Noise is never drawn here: each operator that needs it declares how many
 standard normal tensors it takes (``NOISE_DRAWS``), the step transaction

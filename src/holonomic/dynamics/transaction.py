@@ -294,7 +294,7 @@ def run_step(
                 _rerun(reference, inputs, failed, results, states, group_results)
                 ok = _all_true([r.ok for r in results] + [g.ok for g in group_results.values()])
             if not all(ok):
-                _raise(inputs, results, ok)
+                _raise(inputs, results, ok, list(group_results))
     except BaseException:
         transaction.rollback()
         raise
@@ -330,13 +330,18 @@ def _rerun(reference: Any, inputs: Sequence[StepInput], members: list[int], resu
         results[i] = r
 
 
-def _raise(inputs: Sequence[StepInput], results: list[StepResult], ok: list[bool]) -> None:
+def _raise(inputs: Sequence[StepInput], results: list[StepResult], ok: list[bool],
+           groups: Sequence[int] = ()) -> None:
+    """Raise the step's IntegrationError. ``ok``: the parameters' flags, then one per group
+    state, in the order of ``groups`` (the param-group indices of the group results)."""
     failed = [i for i in range(len(inputs)) if not ok[i]]
     if not failed:  # a group's state (e.g. the thermostat friction) became non-finite
-        u = inputs[0]
-        raise IntegrationError(f"the step gave a non-finite group state in param group {u.group}; nothing was "
+        bad = [g for g, good in zip(groups, ok[len(inputs):]) if not good]
+        group = bad[0] if bad else inputs[0].group
+        u = next((x for x in inputs if x.group == group), inputs[0])
+        raise IntegrationError(f"the step gave a non-finite group state in param group {group}; nothing was "
                                "changed. Use a smaller step or a larger thermostat mass.",
-                               parameter=u.label, reason="non-finite result", group=u.group)
+                               parameter=u.label, reason="non-finite result", group=group)
     grad_ok = _all_true([torch.isfinite(inputs[i].param.grad).all() for i in failed])
     for i, good in zip(failed, grad_ok):  # non-finite gradients first: never retried
         if not good:

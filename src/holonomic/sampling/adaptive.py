@@ -141,6 +141,9 @@ class AdaptiveLangevin(Langevin):
         retry_substeps: retry a step whose projection failed with more substeps
             (``None``: raise), as for :class:`holonomic.Langevin`; the retry
             re-runs the whole step (B, A, D, O, D, A), the thermostat included.
+        backend: which kernels compute the step, as for :class:`holonomic.Langevin`
+            (``"auto"``, ``"reference"``, ``"eager"``, ``"native"``); the
+            adaptive-friction scheme runs on the reference kernel whatever the choice.
 
     Raises:
         ValueError: at construction (or ``add_param_group``) for bad hyperparameters.
@@ -225,7 +228,11 @@ class AdaptiveLangevin(Langevin):
         sd["thermostat_friction"] = [s["friction"].detach().cpu().clone() for s in self.group_states]
         return sd
 
+    #: ``adaptive`` (per group) came after the first release: a dict without it adapted.
+    _SETTINGS_ADDED_LATER = {"adaptive": True}
+
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        state_dict = self._with_later_settings(state_dict)
         self._check_state_dict(state_dict)  # the class, groups and shapes first
         state_dict = dict(state_dict)
         frictions = state_dict.pop("thermostat_friction", None)

@@ -101,7 +101,7 @@ def _verdict_lines(summary: dict[str, Any]) -> list[str]:
     lines = [f"**Verdict** (test {_SHORT.get(task['headline'], task['headline'])} of the "
              f"chosen settings, arm minus {baseline} paired by seed: mean difference "
              f"[95% interval, simultaneous over the arms compared with {baseline} "
-             f"(Bonferroni), so that the verdicts hold together]; "
+             f"(Bonferroni), so that the verdicts on one metric hold together]; "
              f"{'higher' if Task.higher_is_better(task['headline']) else 'lower'}"
              " is better):", ""]
     lines += [f"- {v['line']}" for v in summary["verdict"]]
@@ -307,8 +307,9 @@ def _protocol_lines(metrics: StudyMetrics, baseline: str = BASELINE_ARM,
               "when none is) over the arms, for each metric separately. The verdict and the "
               "reading of each comparison use the simultaneous interval: with m arms "
               "compared with the baseline, each arm's t interval at level 1 - 0.05/m "
-              "(Bonferroni), so that all m intervals hold together with probability at least "
-              "95% (with one arm it is the plain 95% interval); the raw 95% interval is shown "
+              "(Bonferroni), so that all m intervals of one metric hold together with "
+              "probability at least 95% (with one arm it is the plain 95% interval; a second "
+              "verdict line on another metric is a second family); the raw 95% interval is shown "
               "beside it. d_z is the mean "
               "paired difference over its sd (Cohen's standardised effect size).",
               f"- Power figures: `detectable (80% power)` is the smallest true mean "

@@ -240,10 +240,12 @@ def tie_edges(edges: Iterable[Edge], trials: Sequence[Any], means: Sequence[floa
     never binds), so the edge says nothing about where to search."""
     out = []
     for edge in edges:
-        ends = [float(m) for t, m in zip(trials, means)
-                if edge.key in t.settings and float(t.settings[edge.key]) in (edge.low,
-                                                                                edge.high)]
-        tied = (len(ends) > 1 and all(math.isfinite(m) for m in ends)
+        at = {end: [float(m) for t, m in zip(trials, means)
+                    if edge.key in t.settings and float(t.settings[edge.key]) == end]
+              for end in (edge.low, edge.high)}
+        ends = at[edge.low] + at[edge.high]
+        tied = (edge.low != edge.high and all(at.values())  # a mean at each end
+                and all(math.isfinite(m) for m in ends)
                 and max(ends) - min(ends) <= 1e-12 * max(1.0, abs(max(ends))))
         out.append(replace(edge, tied=bool(tied)))
     return tuple(out)
