@@ -222,10 +222,16 @@ def test_old_records_are_reported_as_before(tmp_path, name, config, records):
     new = json.loads((tmp_path / "summary.json").read_text())
     # the verdict now reads the simultaneous (Bonferroni) interval: its interval and lines
     # changed on purpose; the old (raw) interval is kept beside it
+    # and the power notes follow the verdict: a note for each arm whose simultaneous
+    # interval includes 0 and whose difference is below the detectable one
     changed = _walk(old, new)
-    assert [c for c in changed if not c.startswith("/verdict")] == [
+    assert [c for c in changed if not c.startswith(("/verdict", "/power_notes"))] == [
         f"/protocol/selection: {old['protocol']['selection']!r} -> "
         f"{new['protocol']['selection']!r}"]
+    assert [n for n in old["power_notes"] if n not in new["power_notes"]] == []
+    for note in new["power_notes"]:
+        comp = new["comparisons"][note["arm"]][note["metric"]]
+        assert comp["includes_zero_adjusted"] and abs(note["observed"]) < note["detectable"]
     for before, after in zip(old["verdict"], new["verdict"], strict=True):
         if "ci_low" not in before:
             assert before == after
@@ -253,7 +259,8 @@ def test_old_records_are_reported_as_before(tmp_path, name, config, records):
     assert [line for line in added if not line.startswith((
         "What this shows: a tuned comparison", "- Holm's adjustment corrects over the arms",
         "- The max-norm arm clips after each optimiser step",
-        "- Chosen at the edge of what was searched:", "- `results.csv`: one row per run"))] == []
+        "- Chosen at the edge of what was searched:", "- `results.csv`: one row per run"))
+        and line not in {f"- {n['line']}" for n in new["power_notes"]}] == []
     assert not any(line.startswith("- Temperature scan") for line in report)
     rows = list(csv.reader(io.StringIO((tmp_path / "results.csv").read_text())))
     assert len(rows) == 1 + len(records)

@@ -74,6 +74,11 @@ def test_verdict_reads_the_simultaneous_interval(tmp_path):
     assert (f"[{comp['ci_low_adjusted']:.4f}, {comp['ci_high_adjusted']:.4f}] (4 arms)"
             in row and "simultaneous interval includes 0" in row)
     assert "Bonferroni" in report.split("## Protocol")[1].split("##")[0]
+    # the power note follows the verdict: "cannot tell apart" with a difference below what the
+    # study could detect says the study was too small
+    assert abs(comp["mean_difference"]) < comp["detectable_difference"]
+    notes = [str(n) for n in summary["power_notes"]]
+    assert any("fixed_norm vs" in n and "too small" in n for n in notes), notes
 
 
 # --- 2, 3: the verdict carries edges and audit alarms; the audit note's direction -------

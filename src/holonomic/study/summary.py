@@ -586,8 +586,9 @@ def _add_power(comparisons: dict[str, dict[str, dict[str, Any]]], headline: str,
                min_effect: float | None, baseline: str) -> list[dict[str, Any]]:
     """Seeds needed for ``min_effect`` on the headline metric (``seeds_needed``, None: more
     than ``MAX_SEEDS`` or no spread), and a note per arm whose observed headline
-    difference is smaller than the detectable one and whose interval includes 0 (an
-    interval that excludes 0 found the difference, however small the study)."""
+    difference is smaller than the detectable one and whose simultaneous interval (the one
+    the verdict reads) includes 0 (an interval that excludes 0 found the difference, however
+    small the study)."""
     notes = []
     for arm, comps in comparisons.items():
         comp = comps.get(headline)
@@ -599,7 +600,8 @@ def _add_power(comparisons: dict[str, dict[str, dict[str, Any]]], headline: str,
         detectable = comp["detectable_difference"]
         observed = comp["mean_difference"]
         if not (math.isfinite(detectable) and math.isfinite(observed)
-                and abs(observed) < detectable and comp["includes_zero"]):
+                and abs(observed) < detectable
+                and comp.get("includes_zero_adjusted", comp["includes_zero"])):
             continue
         digits = digits_for(headline, comp)
         line = (f"{arm} vs {baseline}, {short_name(headline)}: the study was too small to "
