@@ -109,6 +109,20 @@ def _chosen_trial(trials: list[TrialRuns], sel) -> int | None:
                 None)
 
 
+def _log_x(ax, xs) -> None:
+    """Log x axis whose labels do not overlap on a narrow panel (matplotlib labels minor
+    ticks on short ranges): with two or more powers of ten in range only those are
+    labelled, else also 3 times a power of ten (half a decade between labels)."""
+    from matplotlib.ticker import LogLocator, NullFormatter
+
+    ax.set_xscale("log")
+    powers = math.floor(math.log10(xs.max())) - math.ceil(math.log10(xs.min())) + 1
+    if powers >= 2:
+        ax.xaxis.set_minor_formatter(NullFormatter())
+    else:
+        ax.xaxis.set_minor_locator(LogLocator(base=10, subs=(3.0,)))
+
+
 def _scan_axis(ax, xs) -> None:
     """Log x axis when every value is > 0, symlog when 0 is among them (linear up to the
     smallest positive value); linear with one value only."""
@@ -117,7 +131,7 @@ def _scan_axis(ax, xs) -> None:
     if len(set(xs.tolist())) < 2:
         return
     if len(positive) == len(xs):
-        ax.set_xscale("log")
+        _log_x(ax, xs)
     elif len(positive) and (xs >= 0).all():  # 0 and positive values
         ax.set_xscale("symlog", linthresh=float(positive.min()))
 
@@ -151,7 +165,7 @@ def _against(plt, panels, key: str, metric: str, ylabel: str, title: str, colour
         if force_log:
             _scan_axis(ax, xs)
         elif xs.min() > 0 and xs.max() / xs.min() > 20:
-            ax.set_xscale("log")
+            _log_x(ax, xs)
         ax.set_title(arm, fontsize=9)
         ax.set_xlabel(key)
         ax.set_ylabel(ylabel, fontsize=8)
