@@ -935,7 +935,7 @@ _SETTING_KEYS = ("strength", "lr", "momentum", "temperature")
 _GROUP_KEYS = ("layers", "lr", "lr_scale", "momentum", "temperature", "temperature_scale",
                "adaptive")
 #: Named selections a group's ``layers`` may give besides patterns.
-GROUP_SELECTIONS = ("hidden", "hidden+output", "output")
+GROUP_SELECTIONS = LAYER_SELECTIONS + ("output",)
 _ARM_NAME = re.compile(r"^[A-Za-z0-9_]+$")
 
 

@@ -213,7 +213,7 @@ def check_forward(config: StudyConfig, model: torch.nn.Module, rows, n_outputs: 
     """
     import numpy as np
 
-    from holonomic.study.runner import evaluation_mode
+    from holonomic.study.loop import evaluation_mode
 
     x = torch.as_tensor(np.nan_to_num(np.asarray(rows, dtype=np.float64)), dtype=dtype)
     n, in_features = int(x.shape[0]), int(x.shape[1])

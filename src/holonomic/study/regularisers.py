@@ -107,11 +107,6 @@ def _decoupled(model: nn.Module, strength: float, selection: Any, key: str) -> A
                     measured=[n for n, _ in select_weights(model, selection, key)])
 
 
-def _dropout(model: nn.Module, strength: float, selection: Any, key: str) -> ArmSetup:
-    # the rate is applied when the model is built (RegulariserSpec.model_options)
-    return _none(model, strength, selection, key)
-
-
 def _max_norm(model: nn.Module, strength: float, selection: Any, key: str) -> ArmSetup:
     names = [n for n, _ in select_weights(model, selection, key)]
     weights = [model.get_parameter(n) for n in names]
@@ -232,7 +227,8 @@ REGULARISERS: dict[str, RegulariserSpec] = {spec.name: spec for spec in (
                     _constrain("orthonormal"),
                     optimisers=HOLONOMIC_OPTIMISERS, instead=_SELECTING_INSTEAD,
                     selects_layers=True),
-    RegulariserSpec("dropout", "dropout rate p in [0, 1) after each hidden activation",
-                    (0.05, 0.5), _dropout, minimum_open=False, maximum=1.0, maximum_open=True,
+    RegulariserSpec("dropout", "dropout rate p in [0, 1): after each hidden activation of the "
+                    "built-in MLP; a factory model's nn.Dropout modules get p",
+                    (0.05, 0.5), _none, minimum_open=False, maximum=1.0, maximum_open=True,
                     model_options=lambda strength: {"dropout": float(strength)}),
 )}

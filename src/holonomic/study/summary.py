@@ -21,6 +21,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from scipy import stats as sps
 
+from holonomic.study.config import BASELINE_ARM
 from holonomic.study.ensemble_report import ensemble_metric_names, ensemble_summary
 from holonomic.study.records import RunRecord, as_records
 from holonomic.study.selection import Selection, StudyMetrics
@@ -47,7 +48,7 @@ SHORT_NAMES = {"accuracy": "accuracy", "balanced_accuracy": "balanced accuracy",
                "macro_f1": "macro F1", "roc_auc": "ROC AUC", "loss": "loss", "rmse": "RMSE",
                "mae": "MAE", "r2": "R^2", "ece": "ECE"}
 #: Baseline arm when none is named.
-DEFAULT_BASELINE = "weight_decay"
+DEFAULT_BASELINE = BASELINE_ARM
 
 
 def short_name(name: str) -> str:

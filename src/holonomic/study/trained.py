@@ -259,15 +259,11 @@ def load_trained(study_dir: str | Path, run: str, strength: float | None = None,
 def _trial_key(study_dir: str | Path, arm: str, trial: int, seed: int) -> str:
     """Key of the full-budget run of ``arm``'s trial ``trial`` at ``seed`` (run records read
     from ``study_dir/runs``)."""
-    for path in sorted(storage.runs_dir(study_dir).glob("*.json")):
-        try:
-            record = storage.loads(path.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            continue
-        if (isinstance(record, dict) and record.get("arm") == arm and record.get("seed") == seed
+    for key, record in storage.read_records(study_dir, invalid=[]).items():
+        if (record["arm"] == arm and record["seed"] == seed
                 and record.get("trial", record.get("setting_index")) == trial
                 and record.get("budget_fraction", 1.0) == 1.0):
-            return str(record.get("key", path.stem))
+            return key
     raise FileNotFoundError(f"load_trained: no finished full-budget run of arm {arm!r}, trial "
                             f"{trial}, seed {seed} in {str(study_dir)!r} (trials are numbered "
                             "from 0 within each arm: results.csv column setting_index)")
